@@ -1,0 +1,125 @@
+//! The command line: parses arguments and calls the library.
+
+use std::io::IsTerminal;
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+use indicatif::{ProgressBar, ProgressStyle};
+
+use crate::core::{PolicySpec, RewardModel};
+use crate::sim::{self, SimSpec};
+
+#[derive(Parser, Debug)]
+#[command(name = "apportion", version, about = "Allocates live traffic between experiment arms with bandit policies")]
+pub struct Cli {
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Subcommand, Debug)]
+pub enum Command {
+    /// Compare policies on simulated arms before a launch.
+    Simulate(SimulateArgs),
+}
+
+#[derive(clap::Args, Debug)]
+pub struct SimulateArgs {
+    /// True mean reward of each arm, comma-separated (0/1 rewards unless --reward-max is given).
+    #[arg(long, value_delimiter = ',', required = true)]
+    pub arms: Vec<f64>,
+    /// Policies to compare, comma-separated, each `name[:key=value…]`, e.g.
+    /// `thompson,ucb1,epsilon-greedy:c=6:d=0.01,kl-ucb:c=3,fixed:arm-1=0.5:arm-2=0.5`.
+    #[arg(long, value_delimiter = ',', default_value = "thompson,ucb1,kl-ucb,epsilon-greedy")]
+    pub policies: Vec<PolicySpec>,
+    /// Pulls per run.
+    #[arg(long, default_value_t = 10_000)]
+    pub horizon: u64,
+    /// Independent runs per policy.
+    #[arg(long, default_value_t = 100)]
+    pub runs: u32,
+    /// Impressions between weight updates; 1 lets the policy decide every pull.
+    #[arg(long, default_value_t = 1)]
+    pub batch: u64,
+    /// Seed of the random generator; the same seed gives the same results.
+    #[arg(long, default_value_t = 1)]
+    pub seed: u64,
+    /// Bounded rewards: arms' means are amounts in [0, MAX], rewards drawn as MAX·Beta.
+    #[arg(long, value_name = "MAX")]
+    pub reward_max: Option<f64>,
+    /// Worker threads (default: all cores). Results do not depend on it.
+    #[arg(long)]
+    pub threads: Option<usize>,
+    /// Print one JSON object instead of the table.
+    #[arg(long)]
+    pub json: bool,
+    /// Also draw mean regret against t to this SVG file.
+    #[arg(long, value_name = "FILE.svg")]
+    pub plot: Option<PathBuf>,
+}
+
+/// Runs the command line; the exit code is 2 for bad input, 1 for failures.
+pub fn main() -> ExitCode {
+    let cli = Cli::parse();
+    match cli.command {
+        Command::Simulate(args) => simulate(args),
+    }
+}
+
+fn simulate(args: SimulateArgs) -> ExitCode {
+    let spec = SimSpec {
+        arms: args.arms,
+        reward: args.reward_max.map_or(RewardModel::Bernoulli, |max| RewardModel::Bounded { max }),
+        policies: args.policies,
+        horizon: args.horizon,
+        runs: args.runs,
+        batch: args.batch,
+        seed: args.seed,
+        threads: args.threads.unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get())),
+    };
+    if let Err(e) = spec.validate() {
+        eprintln!("apportion simulate: {e}");
+        return ExitCode::from(2);
+    }
+    for p in &spec.policies {
+        for w in p.warnings() {
+            eprintln!("warning: {w}");
+        }
+    }
+    let total = spec.policies.len() as u64 * spec.runs as u64;
+    let bar = if std::io::stderr().is_terminal() { ProgressBar::new(total) } else { ProgressBar::hidden() };
+    bar.set_style(
+        ProgressStyle::with_template("{bar:40} {pos}/{len} runs · {elapsed} elapsed · about {eta} left")
+            .unwrap_or_else(|_| ProgressStyle::default_bar()),
+    );
+    let report = sim::simulate(&spec, &|done| bar.set_position(done));
+    bar.finish_and_clear();
+    let report = match report {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("apportion simulate: {e}");
+            return ExitCode::from(2);
+        }
+    };
+    if args.json {
+        match serde_json::to_string(&report) {
+            Ok(s) => println!("{s}"),
+            Err(e) => {
+                eprintln!("apportion simulate: cannot write JSON: {e}");
+                return ExitCode::FAILURE;
+            }
+        }
+    } else {
+        print!("{}", sim::output::table(&report));
+    }
+    if let Some(path) = args.plot {
+        if let Err(e) = sim::output::plot(&report, &path) {
+            eprintln!("apportion simulate: {e}");
+            return ExitCode::FAILURE;
+        }
+        if !args.json {
+            println!("plot written to {}", path.display());
+        }
+    }
+    ExitCode::SUCCESS
+}

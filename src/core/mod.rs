@@ -1,0 +1,22 @@
+//! The pure core: statistics, intervals, policies, guardrails and derived figures.
+//!
+//! No async, no I/O, no clock and no global random generator: event time and `now` are passed
+//! in, and so is a seeded generator where a decision is random. Applying observations is
+//! deterministic, so replaying the same events gives the same state bit for bit. The sidecar
+//! and the simulator use this module as it is.
+
+pub mod beta;
+pub mod experiment;
+pub mod guardrails;
+pub mod interval;
+pub mod kl;
+pub mod policy;
+pub mod report;
+pub mod reward;
+pub mod stats;
+
+pub use experiment::{Allocation, Experiment, ExperimentSpec, ExperimentState, Observation, Refusal};
+pub use guardrails::Guardrails;
+pub use policy::{Policy, PolicyName, PolicySpec};
+pub use report::Report;
+pub use reward::RewardModel;

@@ -1,0 +1,6 @@
+//! apportion: allocates live traffic between the arms of experiments with multi-armed bandit
+//! policies. See README.md for the job and DEVELOPERS.md for the map of the code.
+
+pub mod cli;
+pub mod core;
+pub mod sim;
