@@ -1,13 +1,19 @@
 //! The command line: parses arguments and calls the library.
 
 use std::io::IsTerminal;
-use std::path::PathBuf;
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
 use std::process::ExitCode;
+use std::sync::Arc;
 
 use clap::{Parser, Subcommand};
 use indicatif::{ProgressBar, ProgressStyle};
 
+use crate::config::{self, Config, ConfigError, ResolvedExperiment};
 use crate::core::{PolicySpec, RewardModel};
+use crate::shutdown::Shutdown;
+use crate::telemetry::http::Served;
+use crate::telemetry::Metrics;
 use crate::sim::{self, SimSpec};
 
 #[derive(Parser, Debug)]
@@ -19,8 +25,22 @@ pub struct Cli {
 
 #[derive(Subcommand, Debug)]
 pub enum Command {
+    /// Run the sidecar: read events, publish weights, serve metrics.
+    Run {
+        /// Configuration file (default config/apportion.toml when it exists).
+        #[arg(long, value_name = "FILE")]
+        config: Option<PathBuf>,
+    },
+    /// Everything on one machine with nothing installed: an in-process Kafka-protocol broker,
+    /// synthetic traffic for a fictional recipe-video app, the sidecar and its metrics.
+    Demo(crate::demo::DemoArgs),
     /// Compare policies on simulated arms before a launch.
     Simulate(SimulateArgs),
+    /// Validate a configuration and print the resolved experiments.
+    Check {
+        #[arg(long, value_name = "FILE")]
+        config: Option<PathBuf>,
+    },
 }
 
 #[derive(clap::Args, Debug)]
@@ -62,8 +82,109 @@ pub struct SimulateArgs {
 pub fn main() -> ExitCode {
     let cli = Cli::parse();
     match cli.command {
+        Command::Run { config } => run(config),
+        Command::Demo(args) => crate::demo::main(args),
         Command::Simulate(args) => simulate(args),
+        Command::Check { config } => check(config),
     }
+}
+
+/// Loads the configuration named on the command line, or the default file when it exists.
+pub fn load_config(path: Option<PathBuf>) -> Result<Config, ConfigError> {
+    match path {
+        Some(p) => Config::load(&p, true),
+        None => Config::load(Path::new(config::DEFAULT_PATH), false),
+    }
+}
+
+fn run(path: Option<PathBuf>) -> ExitCode {
+    let cfg = match load_config(path) {
+        Ok(c) => c,
+        Err(e) => {
+            eprintln!("apportion run: {e}");
+            return ExitCode::from(2);
+        }
+    };
+    crate::telemetry::init_logging(&cfg.log.format, &cfg.log.level);
+    for w in cfg.warnings() {
+        tracing::warn!("{w}");
+    }
+    let runtime = match tokio::runtime::Runtime::new() {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("apportion run: cannot start the async runtime: {e}");
+            return ExitCode::FAILURE;
+        }
+    };
+    match runtime.block_on(serve_sidecar(cfg, Shutdown::new(), true)) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            tracing::error!("{e:#}");
+            eprintln!("apportion run: {e:#}");
+            ExitCode::FAILURE
+        }
+    }
+}
+
+/// The sidecar with its HTTP endpoints, until `shutdown` (or a signal, when `signals`).
+pub async fn serve_sidecar(cfg: Config, shutdown: Shutdown, signals: bool) -> anyhow::Result<()> {
+    let metrics = Arc::new(Metrics::new()?);
+    let served = Served::new(metrics);
+    serve_sidecar_with(cfg, served, shutdown, signals).await
+}
+
+/// As [`serve_sidecar`], with the served state made by the caller (the demo reads it).
+pub async fn serve_sidecar_with(cfg: Config, served: Arc<Served>, shutdown: Shutdown, signals: bool) -> anyhow::Result<()> {
+    if signals {
+        shutdown.on_signals();
+    }
+    let addr: SocketAddr = cfg.metrics.listen.parse()?;
+    let (local, http) = crate::telemetry::http::serve(addr, served.clone(), shutdown.clone()).await?;
+    tracing::info!("metrics on http://{local}/metrics");
+    let result = crate::stream::run(cfg, served, shutdown.clone()).await;
+    shutdown.trigger();
+    let _ = http.await;
+    result
+}
+
+fn check(path: Option<PathBuf>) -> ExitCode {
+    let cfg = match load_config(path) {
+        Ok(c) => c,
+        Err(e) => {
+            eprintln!("apportion check: {e}");
+            return ExitCode::from(2);
+        }
+    };
+    println!("kafka: brokers {}, group {}", cfg.kafka.brokers, cfg.kafka.group_id);
+    println!(
+        "topics: input {}, weights {}, state {}, dead letters {}",
+        cfg.kafka.input_topic, cfg.kafka.weights_topic, cfg.kafka.state_topic, cfg.kafka.dead_letter_topic
+    );
+    for (k, v) in cfg.client_redacted() {
+        println!("client: {k} = {v}");
+    }
+    println!(
+        "publish every {}s (heartbeat {}s, min change {}), snapshot every {}s, metrics on {}",
+        cfg.publish.interval_seconds,
+        cfg.publish.heartbeat_seconds,
+        cfg.publish.min_change,
+        cfg.snapshot.interval_seconds,
+        cfg.metrics.listen
+    );
+    match cfg.resolve_default_spec() {
+        Ok(spec) if cfg.defaults.auto_create => {
+            let d = ResolvedExperiment { id: "(created on first sight)".into(), arms: Vec::new(), spec };
+            println!("defaults: {d}");
+        }
+        _ => println!("defaults: experiments must be declared (auto_create is off)"),
+    }
+    for r in cfg.resolved() {
+        println!("experiment {r}");
+    }
+    for w in cfg.warnings() {
+        println!("warning: {w}");
+    }
+    ExitCode::SUCCESS
 }
 
 fn simulate(args: SimulateArgs) -> ExitCode {

@@ -2,5 +2,11 @@
 //! policies. See README.md for the job and DEVELOPERS.md for the map of the code.
 
 pub mod cli;
+pub mod config;
 pub mod core;
+pub mod demo;
+pub mod event;
+pub mod shutdown;
 pub mod sim;
+pub mod stream;
+pub mod telemetry;

@@ -232,12 +232,24 @@ impl Experiment {
         out
     }
 
-    /// Computes the weights for the next `batch` impressions and records them as published:
-    /// the version goes up by one and the next publish's step limit starts from them.
+    /// Records `weights` as published: the version goes up by one and the next publish's step
+    /// limit starts from them. Returns the new version.
+    pub fn commit(&mut self, weights: &[f64]) -> u64 {
+        self.version += 1;
+        self.last_weights.clear();
+        self.last_weights.extend_from_slice(weights);
+        self.version
+    }
+
+    /// Weights of the last publish, per arm (NaN for arms that joined since).
+    pub fn last_weights(&self) -> &[f64] {
+        &self.last_weights
+    }
+
+    /// Computes the weights for the next `batch` impressions and commits them.
     pub fn allocate(&mut self, now_ms: i64, batch: u64) -> Allocation {
         let weights = self.weights(now_ms, batch);
-        self.version += 1;
-        self.last_weights.clone_from(&weights);
-        Allocation { version: self.version, weights, report: self.report(now_ms) }
+        let version = self.commit(&weights);
+        Allocation { version, weights, report: self.report(now_ms) }
     }
 }

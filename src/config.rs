@@ -1,0 +1,438 @@
+//! Configuration: a TOML file plus environment overrides for every key
+//! (`APPORTION_<SECTION>__<KEY>`, e.g. `APPORTION_KAFKA__BROKERS=10.0.0.5:9092`).
+//!
+//! Loading checks everything up front, so a bad key stops the process before anything starts;
+//! the error names the key, the value and what would be valid.
+
+use std::collections::BTreeMap;
+use std::fmt;
+use std::path::Path;
+
+use serde::{Deserialize, Serialize};
+
+use crate::core::{Experiment, ExperimentSpec, Guardrails, PolicyName, PolicySpec, RewardModel};
+use crate::event::valid_name;
+
+/// Default location of the configuration file.
+pub const DEFAULT_PATH: &str = "config/apportion.toml";
+
+/// A configuration problem, for people: where, what, and what would be valid.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct ConfigError(pub String);
+
+#[derive(Clone, Debug, Default, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct Config {
+    pub kafka: KafkaConfig,
+    pub publish: PublishConfig,
+    pub snapshot: SnapshotConfig,
+    pub metrics: MetricsConfig,
+    pub limits: Limits,
+    pub log: LogConfig,
+    pub defaults: Defaults,
+    pub experiments: Vec<ExperimentConfig>,
+}
+
+#[derive(Clone, Debug, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct KafkaConfig {
+    /// Bootstrap servers, comma-separated host:port.
+    pub brokers: String,
+    pub group_id: String,
+    pub input_topic: String,
+    pub weights_topic: String,
+    pub state_topic: String,
+    pub dead_letter_topic: String,
+    /// Create missing topics at start (weights and state compacted).
+    pub create_topics: bool,
+    /// Partitions of topics created at start.
+    pub topic_partitions: i32,
+    pub replication_factor: i32,
+    /// librdkafka properties passed through verbatim (security, SASL, TLS, tuning).
+    pub client: BTreeMap<String, String>,
+}
+
+impl Default for KafkaConfig {
+    fn default() -> Self {
+        KafkaConfig {
+            brokers: "127.0.0.1:9092".into(),
+            group_id: "apportion".into(),
+            input_topic: "apportion.events".into(),
+            weights_topic: "apportion.weights".into(),
+            state_topic: "apportion.state".into(),
+            dead_letter_topic: "apportion.dead-letter".into(),
+            create_topics: true,
+            topic_partitions: 6,
+            replication_factor: 1,
+            client: BTreeMap::new(),
+        }
+    }
+}
+
+#[derive(Clone, Debug, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct PublishConfig {
+    /// Seconds between weight computations.
+    pub interval_seconds: f64,
+    /// Publish only when some weight moved at least this much (or on the heartbeat).
+    pub min_change: f64,
+    /// Publish at least this often, in seconds, even without change.
+    pub heartbeat_seconds: f64,
+}
+
+impl Default for PublishConfig {
+    fn default() -> Self {
+        PublishConfig { interval_seconds: 1.0, min_change: 0.001, heartbeat_seconds: 60.0 }
+    }
+}
+
+#[derive(Clone, Debug, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct SnapshotConfig {
+    pub interval_seconds: f64,
+}
+
+impl Default for SnapshotConfig {
+    fn default() -> Self {
+        SnapshotConfig { interval_seconds: 10.0 }
+    }
+}
+
+#[derive(Clone, Debug, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct MetricsConfig {
+    /// Address of /metrics, /healthz, /readyz and /experiments.
+    pub listen: String,
+}
+
+impl Default for MetricsConfig {
+    fn default() -> Self {
+        MetricsConfig { listen: "127.0.0.1:9464".into() }
+    }
+}
+
+#[derive(Clone, Debug, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct Limits {
+    /// Experiments one instance holds; events of further experiments are dead-lettered.
+    pub experiments: usize,
+    /// Arms per experiment.
+    pub arms_per_experiment: usize,
+    /// Event ids remembered per input partition for dropping duplicates.
+    pub duplicate_window: usize,
+    /// How far in the future (seconds) an event time may lie.
+    pub max_clock_skew_seconds: f64,
+    /// Largest event accepted, in bytes.
+    pub max_event_bytes: usize,
+}
+
+impl Default for Limits {
+    fn default() -> Self {
+        Limits {
+            experiments: 10_000,
+            arms_per_experiment: 64,
+            duplicate_window: 10_000,
+            max_clock_skew_seconds: 300.0,
+            max_event_bytes: 16 * 1024,
+        }
+    }
+}
+
+#[derive(Clone, Debug, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct LogConfig {
+    /// `text` or `json`.
+    pub format: String,
+    /// A tracing filter, e.g. `info` or `apportion=debug`.
+    pub level: String,
+}
+
+impl Default for LogConfig {
+    fn default() -> Self {
+        LogConfig { format: "text".into(), level: "info".into() }
+    }
+}
+
+/// How experiments seen for the first time are run.
+#[derive(Clone, Debug, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct Defaults {
+    /// Create an experiment on its first event; when off, events of undeclared experiments are
+    /// dead-lettered.
+    pub auto_create: bool,
+    pub policy: PolicySpec,
+    pub reward: RewardModel,
+    pub guardrails: Guardrails,
+    pub half_life_seconds: Option<f64>,
+}
+
+impl Default for Defaults {
+    fn default() -> Self {
+        Defaults {
+            auto_create: true,
+            policy: PolicySpec::new(PolicyName::Thompson),
+            reward: RewardModel::Bernoulli,
+            guardrails: Guardrails { floor: 0.01, ..Guardrails::default() },
+            half_life_seconds: None,
+        }
+    }
+}
+
+/// A declared experiment.
+#[derive(Clone, Debug, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ExperimentConfig {
+    pub id: String,
+    #[serde(default)]
+    pub arms: Vec<String>,
+    pub policy: Option<PolicySpec>,
+    pub reward: Option<RewardModel>,
+    pub guardrails: Option<Guardrails>,
+    pub half_life_seconds: Option<f64>,
+}
+
+/// An experiment as it will run: declared settings over the defaults.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct ResolvedExperiment {
+    pub id: String,
+    pub arms: Vec<String>,
+    pub spec: ExperimentSpec,
+}
+
+impl Config {
+    /// Reads `path` (when it exists, or always when `required`) and the environment.
+    pub fn load(path: &Path, required: bool) -> Result<Config, ConfigError> {
+        let mut builder = config::Config::builder();
+        if required && !path.exists() {
+            return Err(ConfigError(format!(
+                "configuration file {} does not exist; pass --config FILE (an example is config/apportion.toml)",
+                path.display()
+            )));
+        }
+        if path.exists() {
+            builder = builder.add_source(config::File::from(path).format(config::FileFormat::Toml));
+        }
+        Self::finish(builder, &path.display().to_string())
+    }
+
+    /// Parses TOML text (the demo's embedded configuration) and the environment.
+    pub fn from_toml(text: &str, name: &str) -> Result<Config, ConfigError> {
+        let builder = config::Config::builder().add_source(config::File::from_str(text, config::FileFormat::Toml));
+        Self::finish(builder, name)
+    }
+
+    fn finish(builder: config::ConfigBuilder<config::builder::DefaultState>, name: &str) -> Result<Config, ConfigError> {
+        let built = builder
+            .add_source(
+                config::Environment::with_prefix("APPORTION")
+                    .prefix_separator("_")
+                    .separator("__")
+                    .try_parsing(true),
+            )
+            .build()
+            .map_err(|e| ConfigError(format!("{name}: {e}")))?;
+        let mut cfg: Config = built.try_deserialize().map_err(|e| ConfigError(format!("{name}: {e}")))?;
+        // librdkafka property names use dots and never underscores; an environment variable
+        // cannot hold dots, so APPORTION_KAFKA__CLIENT__SASL_PASSWORD means sasl.password.
+        cfg.kafka.client = std::mem::take(&mut cfg.kafka.client)
+            .into_iter()
+            .map(|(k, v)| (k.replace('_', "."), v))
+            .collect();
+        cfg.validate().map_err(|e| ConfigError(format!("{name}: {e}")))?;
+        Ok(cfg)
+    }
+
+    /// Checks every value; the message names the key.
+    pub fn validate(&self) -> Result<(), String> {
+        let k = &self.kafka;
+        if k.brokers.trim().is_empty() {
+            return Err("kafka.brokers is empty; give host:port[,host:port…]".into());
+        }
+        for (key, v) in [
+            ("kafka.group_id", &k.group_id),
+            ("kafka.input_topic", &k.input_topic),
+            ("kafka.weights_topic", &k.weights_topic),
+            ("kafka.state_topic", &k.state_topic),
+            ("kafka.dead_letter_topic", &k.dead_letter_topic),
+        ] {
+            if v.is_empty() || v.len() > 249 || !v.chars().all(|c| c.is_ascii_alphanumeric() || "._-".contains(c)) {
+                return Err(format!("{key} = {v:?}; a Kafka name of 1–249 characters from [A-Za-z0-9._-]"));
+            }
+        }
+        if k.topic_partitions < 1 || k.replication_factor < 1 {
+            return Err("kafka.topic_partitions and kafka.replication_factor must be ≥ 1".into());
+        }
+        for key in ["group.id", "bootstrap.servers", "enable.auto.commit"] {
+            if k.client.contains_key(key) {
+                return Err(format!("kafka.client.\"{key}\" is set by apportion itself; use the kafka section's own keys"));
+            }
+        }
+        let positive = |key: &str, v: f64| {
+            if v.is_finite() && v > 0.0 {
+                Ok(())
+            } else {
+                Err(format!("{key} = {v}; it must be a number of seconds > 0"))
+            }
+        };
+        positive("publish.interval_seconds", self.publish.interval_seconds)?;
+        positive("publish.heartbeat_seconds", self.publish.heartbeat_seconds)?;
+        positive("snapshot.interval_seconds", self.snapshot.interval_seconds)?;
+        positive("limits.max_clock_skew_seconds", self.limits.max_clock_skew_seconds)?;
+        if !(0.0..=1.0).contains(&self.publish.min_change) {
+            return Err(format!("publish.min_change = {}; it must be in [0, 1]", self.publish.min_change));
+        }
+        if self.metrics.listen.parse::<std::net::SocketAddr>().is_err() {
+            return Err(format!("metrics.listen = {:?}; an address such as 127.0.0.1:9464", self.metrics.listen));
+        }
+        for (key, v) in [
+            ("limits.experiments", self.limits.experiments),
+            ("limits.arms_per_experiment", self.limits.arms_per_experiment),
+            ("limits.duplicate_window", self.limits.duplicate_window),
+            ("limits.max_event_bytes", self.limits.max_event_bytes),
+        ] {
+            if v == 0 {
+                return Err(format!("{key} = 0; it must be at least 1"));
+            }
+        }
+        if !["text", "json"].contains(&self.log.format.as_str()) {
+            return Err(format!("log.format = {:?}; valid: text, json", self.log.format));
+        }
+        let d = &self.defaults;
+        if !d.guardrails.pinned.is_empty() {
+            return Err("defaults.guardrails.pinned: experiments created on first sight have no declared arms to pin".into());
+        }
+        self.resolve_default_spec().map_err(|e| format!("defaults: {e}"))?;
+        let mut seen = std::collections::HashSet::new();
+        for (i, e) in self.experiments.iter().enumerate() {
+            if !valid_name(&e.id) {
+                return Err(format!("experiments[{i}].id = {:?}; 1–64 characters from [A-Za-z0-9._-]", e.id));
+            }
+            if !seen.insert(e.id.as_str()) {
+                return Err(format!("experiments[{i}].id = {:?} is declared twice", e.id));
+            }
+            let r = self.resolve(e).map_err(|m| format!("experiments[{i}] ({}): {m}", e.id))?;
+            for a in &r.arms {
+                if !valid_name(a) {
+                    return Err(format!("experiments[{i}] ({}).arms: {a:?}; 1–64 characters from [A-Za-z0-9._-]", e.id));
+                }
+            }
+            Experiment::new(r.spec.clone(), &r.arms).map_err(|m| format!("experiments[{i}] ({}): {m}", e.id))?;
+        }
+        Ok(())
+    }
+
+    fn half_life_ms(key: &str, v: Option<f64>) -> Result<Option<f64>, String> {
+        match v {
+            None => Ok(None),
+            Some(s) if s.is_finite() && s > 0.0 => Ok(Some(s * 1000.0)),
+            Some(s) => Err(format!("{key} = {s}; it must be a number of seconds > 0")),
+        }
+    }
+
+    /// The spec of experiments created on first sight.
+    pub fn resolve_default_spec(&self) -> Result<ExperimentSpec, String> {
+        let d = &self.defaults;
+        let spec = ExperimentSpec {
+            policy: d.policy.clone(),
+            reward: d.reward,
+            guardrails: d.guardrails.clone(),
+            half_life_ms: Self::half_life_ms("half_life_seconds", d.half_life_seconds)?,
+            max_arms: self.limits.arms_per_experiment,
+        };
+        Experiment::new(spec.clone(), &[])?;
+        Ok(spec)
+    }
+
+    fn resolve(&self, e: &ExperimentConfig) -> Result<ResolvedExperiment, String> {
+        let d = &self.defaults;
+        let mut guardrails = e.guardrails.clone().unwrap_or_else(|| d.guardrails.clone());
+        if e.guardrails.is_none() {
+            guardrails.pinned.clear();
+        }
+        if e.arms.len() > self.limits.arms_per_experiment {
+            return Err(format!(
+                "arms: {} declared, more than limits.arms_per_experiment = {}",
+                e.arms.len(),
+                self.limits.arms_per_experiment
+            ));
+        }
+        Ok(ResolvedExperiment {
+            id: e.id.clone(),
+            arms: e.arms.clone(),
+            spec: ExperimentSpec {
+                policy: e.policy.clone().unwrap_or_else(|| d.policy.clone()),
+                reward: e.reward.unwrap_or(d.reward),
+                guardrails,
+                half_life_ms: Self::half_life_ms("half_life_seconds", e.half_life_seconds.or(d.half_life_seconds))?,
+                max_arms: self.limits.arms_per_experiment,
+            },
+        })
+    }
+
+    /// Every declared experiment as it will run.
+    pub fn resolved(&self) -> Vec<ResolvedExperiment> {
+        self.experiments.iter().filter_map(|e| self.resolve(e).ok()).collect()
+    }
+
+    /// Warnings that do not stop the process (e.g. ε-greedy with c ≤ 5).
+    pub fn warnings(&self) -> Vec<String> {
+        let mut w: Vec<String> = self.defaults.policy.warnings().into_iter().map(|m| format!("defaults: {m}")).collect();
+        for r in self.resolved() {
+            w.extend(r.spec.policy.warnings().into_iter().map(|m| format!("experiment {}: {m}", r.id)));
+            if r.spec.guardrails.floor == 0.0 && r.spec.policy.name != PolicyName::Fixed {
+                w.push(format!(
+                    "experiment {}: floor = 0 lets the policy starve an arm; set a floor where every arm must keep a share",
+                    r.id
+                ));
+            }
+        }
+        w
+    }
+
+    /// librdkafka properties with secrets masked, for printing and logging.
+    pub fn client_redacted(&self) -> BTreeMap<String, String> {
+        self.kafka
+            .client
+            .iter()
+            .map(|(k, v)| (k.clone(), if is_secret(k) { "<redacted>".into() } else { v.clone() }))
+            .collect()
+    }
+}
+
+/// Whether a librdkafka property holds a secret (passwords, keys, tokens, credentials).
+pub fn is_secret(key: &str) -> bool {
+    let k = key.to_ascii_lowercase();
+    ["password", "secret", "token", "credential", ".key.pem", "key.pem", "jaas", "sasl.oauthbearer.config"]
+        .iter()
+        .any(|s| k.contains(s))
+}
+
+impl fmt::Display for ResolvedExperiment {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        let g = &self.spec.guardrails;
+        write!(f, "{}: policy {}", self.id, self.spec.policy)?;
+        match self.spec.reward {
+            RewardModel::Bernoulli => write!(f, ", rewards 0/1")?,
+            RewardModel::Bounded { max } => write!(f, ", rewards in [0, {max}]")?,
+        }
+        write!(f, ", floor {}", g.floor)?;
+        if let Some(c) = g.cap {
+            write!(f, ", cap {c}")?;
+        }
+        if let Some(s) = g.max_step {
+            write!(f, ", max step {s}")?;
+        }
+        for (a, w) in &g.pinned {
+            write!(f, ", {a} pinned at {w}")?;
+        }
+        if let Some(h) = self.spec.half_life_ms {
+            write!(f, ", half-life {}s", h / 1000.0)?;
+        }
+        if self.arms.is_empty() {
+            write!(f, ", arms join on first sight")
+        } else {
+            write!(f, ", arms {}", self.arms.join(", "))
+        }
+    }
+}

@@ -1,0 +1,227 @@
+//! `apportion demo`: an in-process Kafka-protocol broker (librdkafka's mock cluster), traffic
+//! for a fictional recipe-video app, the sidecar with its metrics endpoint, and a live table.
+
+mod scenario;
+mod traffic;
+
+use std::io::IsTerminal;
+use std::process::ExitCode;
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use rdkafka::mocking::MockCluster;
+
+use crate::config::Config;
+use crate::shutdown::Shutdown;
+use crate::telemetry::http::Served;
+use crate::telemetry::Metrics;
+use scenario::{best_arm, WORLD};
+use traffic::Traffic;
+
+const DEMO_CONFIG: &str = include_str!("../../config/demo.toml");
+
+#[derive(clap::Args, Debug)]
+pub struct DemoArgs {
+    /// Stop after this many seconds and print a summary (default: run until Ctrl-C).
+    #[arg(long)]
+    pub seconds: Option<u64>,
+    /// Seed of the traffic generator.
+    #[arg(long, default_value_t = 7)]
+    pub seed: u64,
+    /// Impressions per second.
+    #[arg(long, default_value_t = 1500.0)]
+    pub rate: f64,
+    /// Use this broker (host:port) instead of the in-process one.
+    #[arg(long)]
+    pub brokers: Option<String>,
+    /// Only generate traffic (to a broker given with --brokers); no sidecar, no table.
+    #[arg(long, requires = "brokers")]
+    pub generator_only: bool,
+}
+
+pub fn main(args: DemoArgs) -> ExitCode {
+    let runtime = match tokio::runtime::Runtime::new() {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("apportion demo: cannot start the async runtime: {e}");
+            return ExitCode::FAILURE;
+        }
+    };
+    match runtime.block_on(demo(args)) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            eprintln!("apportion demo: {e:#}");
+            ExitCode::FAILURE
+        }
+    }
+}
+
+async fn demo(args: DemoArgs) -> anyhow::Result<()> {
+    let mut cfg = Config::from_toml(DEMO_CONFIG, "config/demo.toml").map_err(|e| anyhow::anyhow!(e))?;
+    crate::telemetry::init_logging(&cfg.log.format, &cfg.log.level);
+    let mock = match &args.brokers {
+        Some(b) => {
+            cfg.kafka.brokers = b.clone();
+            None
+        }
+        None => {
+            let m = MockCluster::new(1)?;
+            cfg.kafka.brokers = m.bootstrap_servers();
+            for t in [&cfg.kafka.input_topic, &cfg.kafka.weights_topic, &cfg.kafka.state_topic, &cfg.kafka.dead_letter_topic] {
+                m.create_topic(t, cfg.kafka.topic_partitions, 1)?;
+            }
+            Some(m)
+        }
+    };
+    let shutdown = Shutdown::new();
+    shutdown.on_signals();
+    let stop = Arc::new(AtomicBool::new(false));
+    let produced = Arc::new(AtomicU64::new(0));
+    let traffic = Traffic {
+        brokers: cfg.kafka.brokers.clone(),
+        input_topic: cfg.kafka.input_topic.clone(),
+        weights_topic: cfg.kafka.weights_topic.clone(),
+        rate: args.rate,
+        seed: args.seed,
+        stop: stop.clone(),
+        produced: produced.clone(),
+    };
+    let generator = std::thread::spawn(move || traffic.run());
+    let deadline = args.seconds.map(|s| Instant::now() + Duration::from_secs(s));
+
+    if args.generator_only {
+        println!("generating {} impressions/s for Simmer into {} on {}", args.rate, cfg.kafka.input_topic, cfg.kafka.brokers);
+        wait(&shutdown, deadline).await;
+        stop.store(true, Ordering::SeqCst);
+        generator.join().map_err(|_| anyhow::anyhow!("the traffic generator panicked"))??;
+        println!("{} events produced", produced.load(Ordering::Relaxed));
+        return Ok(());
+    }
+
+    let served = Served::new(Arc::new(Metrics::new()?));
+    if std::net::TcpListener::bind(&cfg.metrics.listen).is_err() {
+        cfg.metrics.listen = "127.0.0.1:0".into();
+    }
+    let sidecar = tokio::spawn(crate::cli::serve_sidecar_with(cfg.clone(), served.clone(), shutdown.clone(), false));
+    println!("Simmer demo: an in-process broker, traffic at {} impressions/s, the sidecar (metrics on {}).", args.rate, cfg.metrics.listen);
+    let live = std::io::stdout().is_terminal();
+    let started = Instant::now();
+    let mut last_print = Instant::now();
+    loop {
+        tokio::select! {
+            _ = tokio::time::sleep(Duration::from_secs(1)) => {},
+            _ = shutdown.wait() => {},
+        }
+        if shutdown.is_triggered() || deadline.is_some_and(|d| Instant::now() >= d) || sidecar.is_finished() {
+            break;
+        }
+        if live {
+            print!("\x1b[2J\x1b[H{}", render(&served, started.elapsed(), produced.load(Ordering::Relaxed)));
+        } else if last_print.elapsed() >= Duration::from_secs(5) {
+            last_print = Instant::now();
+            println!("{:>4}s  {} events produced", started.elapsed().as_secs(), produced.load(Ordering::Relaxed));
+        }
+    }
+    stop.store(true, Ordering::SeqCst);
+    generator.join().map_err(|_| anyhow::anyhow!("the traffic generator panicked"))??;
+    shutdown.trigger();
+    sidecar.await??;
+    println!("{}", render(&served, started.elapsed(), produced.load(Ordering::Relaxed)));
+    println!("{}", summary(&served));
+    drop(mock);
+    Ok(())
+}
+
+async fn wait(shutdown: &Shutdown, deadline: Option<Instant>) {
+    match deadline {
+        Some(d) => {
+            tokio::select! {
+                _ = tokio::time::sleep_until(d.into()) => {},
+                _ = shutdown.wait() => {},
+            }
+        }
+        None => shutdown.wait().await,
+    }
+}
+
+#[derive(serde::Deserialize)]
+struct ViewArm {
+    pulls: u64,
+    mean: f64,
+    ci_low: f64,
+    ci_high: f64,
+    weight: Option<f64>,
+}
+
+#[derive(serde::Deserialize)]
+struct View {
+    policy: String,
+    version: u64,
+    leader: Option<String>,
+    regret_estimate: f64,
+    arms: std::collections::BTreeMap<String, ViewArm>,
+}
+
+fn views(served: &Served) -> std::collections::BTreeMap<String, View> {
+    let text = served.experiments.read().map(|g| g.clone()).unwrap_or_default();
+    serde_json::from_str(&text).unwrap_or_default()
+}
+
+/// The live table: experiment, arm, pulls, mean and interval, weight, regret estimate.
+fn render(served: &Served, elapsed: Duration, produced: u64) -> String {
+    let mut s = format!("Simmer · {:>4}s · {produced} events produced\n\n", elapsed.as_secs());
+    s += &format!("{:<14} {:<15} {:>8} {:>26} {:>8}\n", "experiment", "arm", "pulls", "mean [95% interval]", "weight");
+    for (id, v) in views(served) {
+        for (i, (arm, a)) in v.arms.iter().enumerate() {
+            let lead = if v.leader.as_deref() == Some(arm.as_str()) { "*" } else { " " };
+            s += &format!(
+                "{:<14} {lead}{:<14} {:>8} {:>26} {:>8}\n",
+                if i == 0 { id.as_str() } else { "" },
+                arm,
+                a.pulls,
+                format!("{:.4} [{:.4}, {:.4}]", a.mean, a.ci_low, a.ci_high),
+                a.weight.map_or("-".into(), |w| format!("{:.3}", w)),
+            );
+        }
+        s += &format!("{:<14} policy {}, weights version {}, regret estimate {:.1}\n\n", "", v.policy, v.version, v.regret_estimate);
+    }
+    s += "* leader (highest estimated mean)\n";
+    s
+}
+
+/// Where the traffic went, against the truth the sidecar never saw.
+fn summary(served: &Served) -> String {
+    let v = views(served);
+    let mut s = String::from("Summary: where the traffic went\n");
+    for t in WORLD {
+        let Some(e) = v.get(t.experiment) else {
+            s += &format!("  {}: no events applied\n", t.experiment);
+            continue;
+        };
+        let total: u64 = e.arms.values().map(|a| a.pulls).sum::<u64>().max(1);
+        let heaviest = e
+            .arms
+            .iter()
+            .max_by(|a, b| a.1.weight.unwrap_or(0.0).total_cmp(&b.1.weight.unwrap_or(0.0)))
+            .map(|(n, _)| n.as_str())
+            .unwrap_or("-");
+        let best = best_arm(t);
+        s += &format!(
+            "  {}: best arm {best} (hidden truth); largest weight now on {heaviest} — {}\n",
+            t.experiment,
+            if heaviest == best { "found" } else { "not yet" }
+        );
+        for (arm, truth) in t.arms {
+            let a = e.arms.get(*arm);
+            s += &format!(
+                "    {:<14} true mean {:>7} · {:>5.1}% of traffic · weight {}\n",
+                arm,
+                truth,
+                100.0 * a.map_or(0, |a| a.pulls) as f64 / total as f64,
+                a.and_then(|a| a.weight).map_or("-".into(), |w| format!("{w:.3}"))
+            );
+        }
+    }
+    s
+}

@@ -1,0 +1,247 @@
+//! Input events: decoding and validation, without panicking on any input.
+//!
+//! Everything wrong with an event maps to a short reason code, which is what the dead-letter
+//! header `apportion-reason` and the `reason` label of `apportion_dead_letters_total` carry.
+
+use std::borrow::Cow;
+
+use serde::Deserialize;
+
+/// Why an event was rejected. The codes are part of the contract (dead-letter header, metric
+/// label); keep them stable.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, PartialOrd, Ord)]
+pub enum Reason {
+    TooLarge,
+    NotJson,
+    NotObject,
+    MissingField,
+    WrongType,
+    UnknownKind,
+    BadEventId,
+    BadName,
+    ZeroCount,
+    MisplacedField,
+    BadPropensity,
+    RewardOutOfRange,
+    FutureTime,
+    UnknownExperiment,
+    TooManyExperiments,
+    TooManyArms,
+}
+
+impl Reason {
+    pub const ALL: [Reason; 16] = [
+        Reason::TooLarge,
+        Reason::NotJson,
+        Reason::NotObject,
+        Reason::MissingField,
+        Reason::WrongType,
+        Reason::UnknownKind,
+        Reason::BadEventId,
+        Reason::BadName,
+        Reason::ZeroCount,
+        Reason::MisplacedField,
+        Reason::BadPropensity,
+        Reason::RewardOutOfRange,
+        Reason::FutureTime,
+        Reason::UnknownExperiment,
+        Reason::TooManyExperiments,
+        Reason::TooManyArms,
+    ];
+
+    pub fn code(self) -> &'static str {
+        match self {
+            Reason::TooLarge => "too-large",
+            Reason::NotJson => "not-json",
+            Reason::NotObject => "not-object",
+            Reason::MissingField => "missing-field",
+            Reason::WrongType => "wrong-type",
+            Reason::UnknownKind => "unknown-kind",
+            Reason::BadEventId => "bad-event-id",
+            Reason::BadName => "bad-name",
+            Reason::ZeroCount => "zero-count",
+            Reason::MisplacedField => "misplaced-field",
+            Reason::BadPropensity => "bad-propensity",
+            Reason::RewardOutOfRange => "reward-out-of-range",
+            Reason::FutureTime => "future-time",
+            Reason::UnknownExperiment => "unknown-experiment",
+            Reason::TooManyExperiments => "too-many-experiments",
+            Reason::TooManyArms => "too-many-arms",
+        }
+    }
+}
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Kind {
+    Impression,
+    Reward,
+}
+
+impl Kind {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Kind::Impression => "impression",
+            Kind::Reward => "reward",
+        }
+    }
+}
+
+/// A valid event. Strings borrow from the message where JSON allows it.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Event<'a> {
+    pub event_id: Cow<'a, str>,
+    pub kind: Kind,
+    pub experiment: Cow<'a, str>,
+    pub arm: Cow<'a, str>,
+    pub ts_ms: i64,
+    /// Impressions carried (1 unless pre-aggregated); 0 for rewards.
+    pub count: u64,
+    /// Reward value; 0 for impressions.
+    pub reward: f64,
+    pub propensity: Option<f64>,
+    pub weights_version: Option<u64>,
+}
+
+#[derive(Deserialize)]
+struct Raw<'a> {
+    #[serde(borrow)]
+    event_id: Option<Cow<'a, str>>,
+    #[serde(borrow)]
+    kind: Option<Cow<'a, str>>,
+    #[serde(borrow)]
+    experiment: Option<Cow<'a, str>>,
+    #[serde(borrow)]
+    arm: Option<Cow<'a, str>>,
+    ts_ms: Option<i64>,
+    count: Option<u64>,
+    reward: Option<f64>,
+    propensity: Option<f64>,
+    weights_version: Option<u64>,
+}
+
+/// `[A-Za-z0-9._-]{1,64}`: experiment and arm names.
+pub fn valid_name(s: &str) -> bool {
+    !s.is_empty() && s.len() <= 64 && s.bytes().all(|b| b.is_ascii_alphanumeric() || b == b'.' || b == b'_' || b == b'-')
+}
+
+/// Decodes and validates one message value. `now_ms` and `max_skew_ms` bound the event time;
+/// the reward range is checked later, by the experiment's reward model.
+pub fn decode(bytes: &[u8], max_bytes: usize, now_ms: i64, max_skew_ms: i64) -> Result<Event<'_>, Reason> {
+    if bytes.len() > max_bytes {
+        return Err(Reason::TooLarge);
+    }
+    let raw: Raw = serde_json::from_slice(bytes).map_err(|e| {
+        use serde_json::error::Category;
+        match e.classify() {
+            Category::Data => {
+                if first_byte(bytes) == Some(b'{') {
+                    Reason::WrongType
+                } else {
+                    Reason::NotObject
+                }
+            }
+            Category::Io | Category::Syntax | Category::Eof => Reason::NotJson,
+        }
+    })?;
+    let (Some(event_id), Some(kind), Some(experiment), Some(arm), Some(ts_ms)) =
+        (raw.event_id, raw.kind, raw.experiment, raw.arm, raw.ts_ms)
+    else {
+        return Err(Reason::MissingField);
+    };
+    let kind = match kind.as_ref() {
+        "impression" => Kind::Impression,
+        "reward" => Kind::Reward,
+        _ => return Err(Reason::UnknownKind),
+    };
+    if event_id.is_empty() || event_id.chars().count() > 128 {
+        return Err(Reason::BadEventId);
+    }
+    if !valid_name(&experiment) || !valid_name(&arm) {
+        return Err(Reason::BadName);
+    }
+    let (count, reward) = match kind {
+        Kind::Impression => {
+            if raw.reward.is_some() {
+                return Err(Reason::MisplacedField);
+            }
+            match raw.count {
+                Some(0) => return Err(Reason::ZeroCount),
+                c => (c.unwrap_or(1), 0.0),
+            }
+        }
+        Kind::Reward => {
+            if raw.count.is_some() {
+                return Err(Reason::MisplacedField);
+            }
+            (0, raw.reward.unwrap_or(1.0))
+        }
+    };
+    if let Some(p) = raw.propensity {
+        if !(p > 0.0 && p <= 1.0) {
+            return Err(Reason::BadPropensity);
+        }
+    }
+    if ts_ms > now_ms.saturating_add(max_skew_ms) {
+        return Err(Reason::FutureTime);
+    }
+    Ok(Event {
+        event_id,
+        kind,
+        experiment,
+        arm,
+        ts_ms,
+        count,
+        reward,
+        propensity: raw.propensity,
+        weights_version: raw.weights_version,
+    })
+}
+
+fn first_byte(bytes: &[u8]) -> Option<u8> {
+    bytes.iter().copied().find(|b| !b.is_ascii_whitespace())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const NOW: i64 = 1_764_547_200_000;
+
+    fn check(json: &str) -> Result<Event<'_>, Reason> {
+        decode(json.as_bytes(), 4096, NOW, 300_000)
+    }
+
+    #[test]
+    fn accepts_the_examples_of_the_contract() {
+        let e = check(r#"{"event_id":"imp-8f2c01","kind":"impression","experiment":"thumb-style","arm":"warm","ts_ms":1764547200000,"count":1,"propensity":0.25,"weights_version":17}"#).unwrap();
+        assert_eq!((e.kind, e.count, e.weights_version), (Kind::Impression, 1, Some(17)));
+        let r = check(r#"{"event_id":"rew-8f2c01","kind":"reward","experiment":"thumb-style","arm":"warm","ts_ms":1764547203120,"reward":1.0}"#).unwrap();
+        assert_eq!((r.kind, r.reward), (Kind::Reward, 1.0));
+    }
+
+    #[test]
+    fn names_a_reason_for_each_kind_of_bad_input() {
+        let base = |extra: &str| {
+            format!(r#"{{"event_id":"e1","kind":"impression","experiment":"x","arm":"a","ts_ms":{NOW}{extra}}}"#)
+        };
+        let cases: Vec<(String, Reason)> = vec![
+            ("not json".into(), Reason::NotJson),
+            ("[1,2]".into(), Reason::NotObject),
+            ("42".into(), Reason::NotObject),
+            (r#"{"kind":"impression"}"#.into(), Reason::MissingField),
+            (r#"{"event_id":"e","kind":"impression","experiment":"x","arm":"a","ts_ms":"soon"}"#.into(), Reason::WrongType),
+            (r#"{"event_id":"e","kind":"click","experiment":"x","arm":"a","ts_ms":1}"#.into(), Reason::UnknownKind),
+            (r#"{"event_id":"e","kind":"impression","experiment":"x y","arm":"a","ts_ms":1}"#.into(), Reason::BadName),
+            (r#"{"event_id":"","kind":"impression","experiment":"x","arm":"a","ts_ms":1}"#.into(), Reason::BadEventId),
+            (base(r#","count":0"#), Reason::ZeroCount),
+            (base(r#","count":-1"#), Reason::WrongType),
+            (base(r#","reward":1"#), Reason::MisplacedField),
+            (base(r#","propensity":0"#), Reason::BadPropensity),
+            (format!(r#"{{"event_id":"e","kind":"impression","experiment":"x","arm":"a","ts_ms":{}}}"#, NOW + 3_600_000), Reason::FutureTime),
+        ];
+        for (input, reason) in cases {
+            assert_eq!(check(&input).map(|_| ()), Err(reason), "{input}");
+        }
+        assert_eq!(decode(&[b' '; 5000], 4096, NOW, 0).map(|_| ()), Err(Reason::TooLarge));
+    }
+}

@@ -1,0 +1,632 @@
+//! The per-partition state and everything done to it: apply events, publish weights, write and
+//! load snapshots. One thread drives it (see `source.rs`); rebalance callbacks run on that same
+//! thread, between messages, so a snapshot always matches its offset exactly.
+
+use std::collections::{BTreeMap, HashMap};
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use rdkafka::consumer::{BaseConsumer, Consumer};
+use rdkafka::message::{Header, Message, OwnedHeaders};
+use rdkafka::producer::{BaseRecord, DeliveryResult, Producer, ProducerContext, ThreadedProducer};
+use rdkafka::{ClientContext, Offset, TopicPartitionList};
+use rustc_hash::FxHashMap;
+
+use super::dedup::DedupWindow;
+use super::publish::WeightsMessage;
+use super::snapshot::{self, Counters, Snapshot};
+use crate::config::{Config, ResolvedExperiment};
+use crate::core::{Experiment, ExperimentSpec, Observation, Refusal};
+use crate::event::{self, Kind, Reason};
+use crate::telemetry::http::Served;
+use crate::telemetry::{ArmHandles, Metrics};
+
+/// Counts deliveries that failed, so that a snapshot is only trusted once it has landed.
+#[derive(Default)]
+pub struct DeliveryWatch {
+    pub failed: AtomicU64,
+}
+
+impl ClientContext for DeliveryWatch {}
+
+impl ProducerContext for DeliveryWatch {
+    type DeliveryOpaque = ();
+    fn delivery(&self, result: &DeliveryResult<'_>, _: ()) {
+        if let Err((e, m)) = result {
+            self.failed.fetch_add(1, Ordering::SeqCst);
+            tracing::error!(topic = m.topic(), partition = m.partition(), "delivery failed: {e}");
+        }
+    }
+}
+
+pub type Sink = ThreadedProducer<DeliveryWatch>;
+
+/// Settings the pipeline needs, resolved from configuration once.
+pub struct Settings {
+    pub input_topic: String,
+    pub weights_topic: String,
+    pub state_topic: String,
+    pub dead_letter_topic: String,
+    pub default_spec: Option<ExperimentSpec>,
+    pub declared: HashMap<String, ResolvedExperiment>,
+    pub max_experiments: usize,
+    pub duplicate_window: usize,
+    pub max_event_bytes: usize,
+    pub max_skew_ms: i64,
+    pub publish_interval: Duration,
+    pub heartbeat: Duration,
+    pub min_change: f64,
+    pub snapshot_interval: Duration,
+}
+
+impl Settings {
+    pub fn from_config(cfg: &Config) -> Result<Settings, String> {
+        let default_spec = if cfg.defaults.auto_create { Some(cfg.resolve_default_spec()?) } else { None };
+        Ok(Settings {
+            input_topic: cfg.kafka.input_topic.clone(),
+            weights_topic: cfg.kafka.weights_topic.clone(),
+            state_topic: cfg.kafka.state_topic.clone(),
+            dead_letter_topic: cfg.kafka.dead_letter_topic.clone(),
+            default_spec,
+            declared: cfg.resolved().into_iter().map(|r| (r.id.clone(), r)).collect(),
+            max_experiments: cfg.limits.experiments,
+            duplicate_window: cfg.limits.duplicate_window,
+            max_event_bytes: cfg.limits.max_event_bytes,
+            max_skew_ms: (cfg.limits.max_clock_skew_seconds * 1000.0) as i64,
+            publish_interval: Duration::from_secs_f64(cfg.publish.interval_seconds),
+            heartbeat: Duration::from_secs_f64(cfg.publish.heartbeat_seconds),
+            min_change: cfg.publish.min_change,
+            snapshot_interval: Duration::from_secs_f64(cfg.snapshot.interval_seconds),
+        })
+    }
+}
+
+struct Entry {
+    exp: Experiment,
+    handles: Vec<ArmHandles>,
+    /// Impressions applied since the last publish: the batch the next weights are for.
+    impressions_since: u64,
+    changed: bool,
+    first_applied: Option<Instant>,
+    last_published: Option<Instant>,
+}
+
+struct PartitionState {
+    next_offset: i64,
+    experiments: FxHashMap<String, Entry>,
+    dedup: DedupWindow,
+    counters: Counters,
+}
+
+pub struct Pipeline {
+    s: Arc<Settings>,
+    metrics: Arc<Metrics>,
+    served: Arc<Served>,
+    sink: Arc<Sink>,
+    state_reader: BaseConsumer,
+    state_partitions: i32,
+    partitions: BTreeMap<i32, PartitionState>,
+    /// Experiment → the partition whose copy publishes it (the first to see it).
+    owners: HashMap<String, i32>,
+    last_publish: Instant,
+    last_snapshot: Instant,
+}
+
+pub fn now_ms() -> i64 {
+    std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map_or(0, |d| d.as_millis() as i64)
+}
+
+impl Pipeline {
+    pub fn new(
+        s: Arc<Settings>,
+        metrics: Arc<Metrics>,
+        served: Arc<Served>,
+        sink: Arc<Sink>,
+        state_reader: BaseConsumer,
+        state_partitions: i32,
+    ) -> Self {
+        Pipeline {
+            s,
+            metrics,
+            served,
+            sink,
+            state_reader,
+            state_partitions: state_partitions.max(1),
+            partitions: BTreeMap::new(),
+            owners: HashMap::new(),
+            last_publish: Instant::now(),
+            last_snapshot: Instant::now(),
+        }
+    }
+
+    pub fn settings(&self) -> &Settings {
+        &self.s
+    }
+
+    fn count(&self, part: &mut PartitionState, kind: &str, outcome: &str) {
+        self.metrics.events.with_label_values(&[kind, outcome]).inc();
+        *part.counters.events.entry(format!("{kind}/{outcome}")).or_default() += 1;
+    }
+
+    /// Applies one message of input partition `partition` at `offset`.
+    pub fn on_message(&mut self, partition: i32, offset: i64, key: Option<&[u8]>, payload: Option<&[u8]>, now_ms: i64) {
+        let Some(mut part) = self.partitions.remove(&partition) else {
+            return;
+        };
+        if offset >= part.next_offset {
+            self.apply(&mut part, partition, offset, key, payload.unwrap_or_default(), now_ms);
+            part.next_offset = offset + 1;
+        }
+        self.partitions.insert(partition, part);
+    }
+
+    fn apply(&mut self, part: &mut PartitionState, partition: i32, offset: i64, key: Option<&[u8]>, bytes: &[u8], now_ms: i64) {
+        let ev = match event::decode(bytes, self.s.max_event_bytes, now_ms, self.s.max_skew_ms) {
+            Ok(ev) => ev,
+            Err(reason) => return self.reject(part, partition, offset, key, bytes, reason, "unknown"),
+        };
+        let kind = ev.kind.as_str();
+        if part.dedup.contains(&ev.event_id) {
+            return self.count(part, kind, "duplicate");
+        }
+        if !part.experiments.contains_key(ev.experiment.as_ref()) {
+            let total: usize = self.partitions.values().map(|p| p.experiments.len()).sum::<usize>() + part.experiments.len();
+            let spec = match self.s.declared.get(ev.experiment.as_ref()) {
+                Some(r) => Some((r.spec.clone(), r.arms.clone())),
+                None => self.s.default_spec.clone().map(|s| (s, Vec::new())),
+            };
+            let Some((spec, arms)) = spec else {
+                return self.reject(part, partition, offset, key, bytes, Reason::UnknownExperiment, kind);
+            };
+            if total >= self.s.max_experiments {
+                return self.reject(part, partition, offset, key, bytes, Reason::TooManyExperiments, kind);
+            }
+            let exp = match Experiment::new(spec, &arms) {
+                Ok(e) => e,
+                Err(e) => {
+                    tracing::error!(experiment = %ev.experiment, "cannot create experiment: {e}");
+                    return self.reject(part, partition, offset, key, bytes, Reason::UnknownExperiment, kind);
+                }
+            };
+            let handles = arms.iter().map(|a| self.metrics.arm_handles(&ev.experiment, a)).collect();
+            part.experiments.insert(
+                ev.experiment.to_string(),
+                Entry { exp, handles, impressions_since: 0, changed: true, first_applied: None, last_published: None },
+            );
+            self.note_owner(part, partition, &ev.experiment);
+        } else if let Some(&owner) = self.owners.get(ev.experiment.as_ref()) {
+            if owner != partition {
+                self.metrics.split.with_label_values(&[&ev.experiment]).inc();
+                *part.counters.split.entry(ev.experiment.to_string()).or_default() += 1;
+            }
+        }
+        let metrics = &self.metrics;
+        let Some(entry) = part.experiments.get_mut(ev.experiment.as_ref()) else {
+            return;
+        };
+        let arm = match entry.exp.arm_or_add(&ev.arm) {
+            Ok(j) => j,
+            Err(_) => return self.reject(part, partition, offset, key, bytes, Reason::TooManyArms, kind),
+        };
+        if arm == entry.handles.len() {
+            entry.handles.push(metrics.arm_handles(&ev.experiment, &ev.arm));
+        }
+        let obs = match ev.kind {
+            Kind::Impression => Observation::Impression { count: ev.count },
+            Kind::Reward => Observation::Reward { value: ev.reward },
+        };
+        if let Err(Refusal::RewardOutOfRange | Refusal::TooManyArms) = entry.exp.observe(arm, ev.ts_ms, obs) {
+            return self.reject(part, partition, offset, key, bytes, Reason::RewardOutOfRange, kind);
+        }
+        let h = &entry.handles[arm];
+        match obs {
+            Observation::Impression { count } => {
+                h.pulls.inc_by(count);
+                entry.impressions_since += count;
+                if let Some(t) = entry.exp.arm_stats()[arm].last_pull_ms {
+                    h.last_pull.set(t as f64 / 1000.0);
+                }
+            }
+            Observation::Reward { value } => h.reward.inc_by(value),
+        }
+        entry.changed = true;
+        entry.first_applied.get_or_insert_with(Instant::now);
+        part.dedup.insert(&ev.event_id);
+        self.count(part, kind, "applied");
+    }
+
+    fn note_owner(&mut self, part: &mut PartitionState, partition: i32, experiment: &str) {
+        match self.owners.get(experiment) {
+            None => {
+                self.owners.insert(experiment.to_string(), partition);
+            }
+            Some(&owner) if owner != partition => {
+                tracing::warn!(
+                    experiment,
+                    partitions = ?[owner, partition],
+                    "experiment seen on more than one input partition; key its events by experiment id. Partition {owner} publishes it"
+                );
+                self.metrics.split.with_label_values(&[experiment]).inc();
+                *part.counters.split.entry(experiment.to_string()).or_default() += 1;
+            }
+            _ => {}
+        }
+    }
+
+    #[allow(clippy::too_many_arguments)]
+    fn reject(&self, part: &mut PartitionState, partition: i32, offset: i64, key: Option<&[u8]>, bytes: &[u8], reason: Reason, kind: &str) {
+        self.count(part, kind, "rejected");
+        self.metrics.dead_letters.with_label_values(&[reason.code()]).inc();
+        *part.counters.dead_letters.entry(reason.code().to_string()).or_default() += 1;
+        let source = format!("{}/{partition}/{offset}", self.s.input_topic);
+        let headers = OwnedHeaders::new()
+            .insert(Header { key: "apportion-reason", value: Some(reason.code()) })
+            .insert(Header { key: "apportion-source", value: Some(&source) });
+        let mut record: BaseRecord<'_, [u8], [u8]> = BaseRecord::to(&self.s.dead_letter_topic).payload(bytes).headers(headers);
+        if let Some(k) = key {
+            record = record.key(k);
+        }
+        send_with_retry(&self.sink, record);
+    }
+
+    /// Publishes the weights of every experiment that is due. Called between messages.
+    pub fn publish_due(&mut self, force: bool) {
+        if !force && self.last_publish.elapsed() < self.s.publish_interval {
+            return;
+        }
+        self.last_publish = Instant::now();
+        let now = now_ms();
+        let mut view = serde_json::Map::new();
+        for (&partition, part) in self.partitions.iter_mut() {
+            for (id, e) in part.experiments.iter_mut() {
+                if self.owners.get(id) != Some(&partition) {
+                    continue;
+                }
+                let heartbeat = e.last_published.is_none_or(|t| t.elapsed() >= self.s.heartbeat);
+                if e.changed || heartbeat {
+                    let weights = e.exp.weights(now, e.impressions_since.max(1));
+                    let moved = e
+                        .exp
+                        .last_weights()
+                        .iter()
+                        .zip(&weights)
+                        .map(|(a, b)| if a.is_finite() { (a - b).abs() } else { f64::INFINITY })
+                        .fold(0.0, f64::max);
+                    let new_arm = weights.len() != e.exp.last_weights().len();
+                    if e.exp.version() == 0 || heartbeat || new_arm || moved >= self.s.min_change {
+                        let version = e.exp.commit(&weights);
+                        let alloc = crate::core::Allocation { version, weights, report: e.exp.report(now) };
+                        let msg = WeightsMessage::new(id, &e.exp, &alloc, now);
+                        match serde_json::to_vec(&msg) {
+                            Ok(bytes) => {
+                                let record = BaseRecord::to(&self.s.weights_topic).key(id.as_bytes()).payload(&bytes[..]);
+                                send_with_retry(&self.sink, record);
+                            }
+                            Err(err) => tracing::error!(experiment = %id, "cannot encode weights: {err}"),
+                        }
+                        update_gauges(&self.metrics, id, &e.exp, &alloc, now);
+                        if let Some(t) = e.first_applied.take() {
+                            self.metrics.publish_latency.observe(t.elapsed().as_secs_f64());
+                        }
+                        e.last_published = Some(Instant::now());
+                        e.impressions_since = 0;
+                    }
+                    e.changed = false;
+                }
+                if let Ok(v) = serde_json::to_value(ExperimentView::new(id, partition, &e.exp, now)) {
+                    view.insert(id.clone(), v);
+                }
+            }
+        }
+        if let Ok(mut g) = self.served.experiments.write() {
+            *g = serde_json::Value::Object(view).to_string();
+        }
+    }
+
+    /// Writes the snapshots of `partitions` and waits until they have landed. Returns the
+    /// offsets that may be committed to the group (for lag reporting only).
+    pub fn snapshot(&mut self, partitions: &[i32]) -> Vec<(i32, i64)> {
+        let written_at_ms = now_ms();
+        let failed_before = self.sink.context().failed.load(Ordering::SeqCst);
+        let mut done = Vec::new();
+        for &p in partitions {
+            let Some(part) = self.partitions.get(&p) else { continue };
+            let snap = Snapshot {
+                format: snapshot::FORMAT,
+                topic: self.s.input_topic.clone(),
+                partition: p,
+                next_offset: part.next_offset,
+                written_at_ms,
+                experiments: part.experiments.iter().map(|(k, e)| (k.clone(), e.exp.state())).collect(),
+                duplicates: part.dedup.ids(),
+                counters: part.counters.clone(),
+            };
+            let bytes = match snap.encode() {
+                Ok(b) => b,
+                Err(e) => {
+                    tracing::error!(partition = p, "cannot encode snapshot: {e}");
+                    continue;
+                }
+            };
+            let key = snapshot::key(&self.s.input_topic, p);
+            let record = BaseRecord::to(&self.s.state_topic)
+                .key(key.as_bytes())
+                .payload(&bytes[..])
+                .partition(p % self.state_partitions);
+            send_with_retry(&self.sink, record);
+            done.push((p, part.next_offset));
+        }
+        if let Err(e) = self.sink.flush(Duration::from_secs(30)) {
+            tracing::error!("snapshots not confirmed by the broker: {e}");
+            return Vec::new();
+        }
+        if self.sink.context().failed.load(Ordering::SeqCst) != failed_before {
+            tracing::error!("a snapshot was not delivered; offsets are not committed");
+            return Vec::new();
+        }
+        let secs = written_at_ms as f64 / 1000.0;
+        for &(p, _) in &done {
+            self.metrics.snapshot_time.with_label_values(&[&p.to_string()]).set(secs);
+        }
+        self.last_snapshot = Instant::now();
+        done
+    }
+
+    pub fn snapshot_due(&mut self) -> Vec<(i32, i64)> {
+        if self.last_snapshot.elapsed() < self.s.snapshot_interval {
+            return Vec::new();
+        }
+        let all: Vec<i32> = self.partitions.keys().copied().collect();
+        self.snapshot(&all)
+    }
+
+    pub fn owned_partitions(&self) -> Vec<i32> {
+        self.partitions.keys().copied().collect()
+    }
+
+    /// Takes partitions over: loads each one's latest snapshot and returns where to resume.
+    pub fn assign(&mut self, partitions: &[i32]) -> Vec<(i32, Offset)> {
+        let mut out = Vec::new();
+        for &p in partitions {
+            let snap = match self.load_snapshot(p) {
+                Ok(s) => s,
+                Err(e) => {
+                    tracing::error!(partition = p, "cannot read the state topic: {e}; the partition is not taken");
+                    continue;
+                }
+            };
+            let part = self.restore(p, snap);
+            out.push((p, if part.next_offset > 0 { Offset::Offset(part.next_offset) } else { Offset::Beginning }));
+            tracing::info!(partition = p, next_offset = part.next_offset, experiments = part.experiments.len(), "partition assigned");
+            let ids: Vec<String> = part.experiments.keys().cloned().collect();
+            self.partitions.insert(p, part);
+            for id in ids {
+                if let Some(mut part) = self.partitions.remove(&p) {
+                    self.note_owner(&mut part, p, &id);
+                    self.partitions.insert(p, part);
+                }
+            }
+        }
+        out
+    }
+
+    fn restore(&self, p: i32, snap: Option<Snapshot>) -> PartitionState {
+        let Some(snap) = snap else {
+            return PartitionState {
+                next_offset: 0,
+                experiments: FxHashMap::default(),
+                dedup: DedupWindow::new(self.s.duplicate_window),
+                counters: Counters::default(),
+            };
+        };
+        // Publishes after the snapshot may have been lost with a crash; versions go up by at
+        // least as many as could have been published since it was written.
+        let since = (now_ms() - snap.written_at_ms).max(0) as f64;
+        let lost = (since / self.s.publish_interval.as_millis().max(1) as f64).ceil() as u64 + 1;
+        let mut experiments = FxHashMap::default();
+        for (id, state) in snap.experiments {
+            let (spec, arms) = match self.s.declared.get(&id) {
+                Some(r) => (r.spec.clone(), r.arms.clone()),
+                None => match &self.s.default_spec {
+                    Some(s) => (s.clone(), Vec::new()),
+                    None => {
+                        tracing::warn!(experiment = %id, partition = p, "experiment in the snapshot is no longer declared; dropped");
+                        continue;
+                    }
+                },
+            };
+            let version = state.version;
+            match Experiment::restore(spec, &arms, state) {
+                Ok(mut exp) => {
+                    exp.raise_version(version + lost);
+                    let handles: Vec<ArmHandles> = exp.arm_names().iter().map(|a| self.metrics.arm_handles(&id, a)).collect();
+                    for (h, s) in handles.iter().zip(exp.arm_stats()) {
+                        h.pulls.inc_by(s.pulls_total);
+                        h.reward.inc_by(s.reward_total);
+                        if let Some(t) = s.last_pull_ms {
+                            h.last_pull.set(t as f64 / 1000.0);
+                        }
+                    }
+                    experiments.insert(
+                        id,
+                        Entry { exp, handles, impressions_since: 0, changed: true, first_applied: None, last_published: None },
+                    );
+                }
+                Err(e) => tracing::error!(experiment = %id, partition = p, "cannot restore experiment under the current configuration: {e}"),
+            }
+        }
+        for (k, v) in &snap.counters.events {
+            if let Some((kind, outcome)) = k.split_once('/') {
+                self.metrics.events.with_label_values(&[kind, outcome]).inc_by(*v);
+            }
+        }
+        for (reason, v) in &snap.counters.dead_letters {
+            self.metrics.dead_letters.with_label_values(&[reason]).inc_by(*v);
+        }
+        for (exp, v) in &snap.counters.split {
+            self.metrics.split.with_label_values(&[exp]).inc_by(*v);
+        }
+        PartitionState {
+            next_offset: snap.next_offset,
+            experiments,
+            dedup: DedupWindow::restore(self.s.duplicate_window, &snap.duplicates),
+            counters: snap.counters,
+        }
+    }
+
+    /// Hands partitions back: publishes what is due, snapshots them, drops their state and
+    /// their metric series. Returns the offsets to commit.
+    pub fn revoke(&mut self, partitions: &[i32]) -> Vec<(i32, i64)> {
+        self.publish_due(true);
+        let offsets = self.snapshot(partitions);
+        for p in partitions {
+            if let Some(part) = self.partitions.remove(p) {
+                for (id, e) in &part.experiments {
+                    if self.owners.get(id) == Some(p) {
+                        self.owners.remove(id);
+                    }
+                    self.metrics.remove_experiment(id, e.exp.arm_names());
+                }
+                let _ = self.metrics.snapshot_time.remove_label_values(&[&p.to_string()]);
+                let _ = self.metrics.consumer_lag.remove_label_values(&[&self.s.input_topic, &p.to_string()]);
+            }
+            tracing::info!(partition = p, "partition handed over");
+        }
+        offsets
+    }
+
+    /// The newest readable snapshot of input partition `p`, scanning the state topic backwards
+    /// from its end in growing steps, so that restoring does not read the whole history.
+    fn load_snapshot(&self, p: i32) -> Result<Option<Snapshot>, String> {
+        let topic = &self.s.state_topic;
+        let sp = p % self.state_partitions;
+        let key = snapshot::key(&self.s.input_topic, p);
+        let (low, high) = self
+            .state_reader
+            .fetch_watermarks(topic, sp, Duration::from_secs(10))
+            .map_err(|e| format!("watermarks of {topic}/{sp}: {e}"))?;
+        let mut end = high;
+        let mut step = 64i64;
+        while end > low {
+            let start = (end - step).max(low);
+            let mut found: Vec<Vec<u8>> = Vec::new();
+            let mut tpl = TopicPartitionList::new();
+            tpl.add_partition_offset(topic, sp, Offset::Offset(start)).map_err(|e| e.to_string())?;
+            self.state_reader.assign(&tpl).map_err(|e| e.to_string())?;
+            let deadline = Instant::now() + Duration::from_secs(60);
+            let mut next = start;
+            while next < end && Instant::now() < deadline {
+                match self.state_reader.poll(Duration::from_millis(200)) {
+                    Some(Ok(m)) => {
+                        next = m.offset() + 1;
+                        if m.offset() < end && m.key() == Some(key.as_bytes()) {
+                            found.push(m.payload().unwrap_or_default().to_vec());
+                        }
+                    }
+                    Some(Err(e)) => tracing::warn!("reading {topic}/{sp}: {e}"),
+                    None => {}
+                }
+            }
+            if next < end {
+                return Err(format!("timed out reading {topic}/{sp} from offset {start} to {end}"));
+            }
+            for bytes in found.iter().rev() {
+                match Snapshot::decode(bytes) {
+                    Ok(s) if s.partition == p && s.topic == self.s.input_topic => {
+                        let _ = self.state_reader.unassign();
+                        return Ok(Some(s));
+                    }
+                    Ok(_) => {}
+                    Err(e) => tracing::error!(partition = p, "skipping an unreadable snapshot: {e}"),
+                }
+            }
+            end = start;
+            step = step.saturating_mul(4);
+        }
+        let _ = self.state_reader.unassign();
+        Ok(None)
+    }
+}
+
+fn send_with_retry(sink: &Sink, mut record: BaseRecord<'_, [u8], [u8]>) {
+    for _ in 0..600 {
+        match sink.send(record) {
+            Ok(()) => return,
+            Err((e, r)) => {
+                if !matches!(e.rdkafka_error_code(), Some(rdkafka::types::RDKafkaErrorCode::QueueFull)) {
+                    tracing::error!(topic = r.topic, "cannot send: {e}");
+                    return;
+                }
+                record = r;
+                std::thread::sleep(Duration::from_millis(100));
+            }
+        }
+    }
+    tracing::error!(topic = record.topic, "producer queue stayed full for a minute; message dropped");
+}
+
+fn update_gauges(m: &Metrics, id: &str, exp: &Experiment, alloc: &crate::core::Allocation, now_ms: i64) {
+    for (j, name) in exp.arm_names().iter().enumerate() {
+        let l = &[id, name.as_str()];
+        let a = &alloc.report.arms[j];
+        m.arm_mean.with_label_values(l).set(a.mean);
+        m.arm_width.with_label_values(l).set(a.width());
+        m.arm_weight.with_label_values(l).set(alloc.weights[j]);
+        m.arm_undecided.with_label_values(l).set(i64::from(a.undecided));
+    }
+    m.regret.with_label_values(&[id]).set(alloc.report.regret_estimate);
+    m.exploration
+        .with_label_values(&[id])
+        .set(crate::core::report::exploration_ratio(&alloc.weights, alloc.report.leader));
+    m.weights_version.with_label_values(&[id]).set(alloc.version as i64);
+    m.weights_published.with_label_values(&[id]).set(now_ms as f64 / 1000.0);
+}
+
+/// What `/experiments` shows of one experiment.
+#[derive(serde::Serialize)]
+struct ExperimentView<'a> {
+    partition: i32,
+    policy: &'a str,
+    version: u64,
+    leader: Option<&'a str>,
+    regret_estimate: f64,
+    arms: BTreeMap<&'a str, ArmView>,
+}
+
+#[derive(serde::Serialize)]
+struct ArmView {
+    pulls: u64,
+    reward: f64,
+    mean: f64,
+    ci_low: f64,
+    ci_high: f64,
+    weight: Option<f64>,
+    undecided: bool,
+}
+
+impl<'a> ExperimentView<'a> {
+    fn new(_id: &str, partition: i32, exp: &'a Experiment, now: i64) -> Self {
+        let report = exp.report(now);
+        let names = exp.arm_names();
+        ExperimentView {
+            partition,
+            policy: exp.policy_name(),
+            version: exp.version(),
+            leader: report.leader.map(|l| names[l].as_str()),
+            regret_estimate: report.regret_estimate,
+            arms: names
+                .iter()
+                .zip(report.arms.iter())
+                .zip(exp.last_weights().iter().map(|w| w.is_finite().then_some(*w)).chain(std::iter::repeat(None)))
+                .map(|((n, a), w)| {
+                    (
+                        n.as_str(),
+                        ArmView { pulls: a.pulls, reward: a.reward, mean: a.mean, ci_low: a.ci_low, ci_high: a.ci_high, weight: w, undecided: a.undecided },
+                    )
+                })
+                .collect(),
+        }
+    }
+}
+

@@ -1,0 +1,133 @@
+//! The consumer thread: polls the input topic, hands each message to the pipeline, and takes
+//! partitions over or hands them back in the rebalance callback.
+//!
+//! The callback runs inside `poll`, on this thread, between two messages: on assignment it
+//! loads each partition's snapshot and starts reading at the snapshot's offset, whatever the
+//! group's committed offset says; on revocation it snapshots the partition before letting go.
+
+use std::sync::{Arc, Mutex, MutexGuard};
+use std::time::Duration;
+
+use rdkafka::consumer::{BaseConsumer, CommitMode, Consumer, ConsumerContext, RebalanceProtocol};
+use rdkafka::message::Message;
+use rdkafka::statistics::Statistics;
+use rdkafka::types::RDKafkaRespErr;
+use rdkafka::{ClientContext, Offset, TopicPartitionList};
+
+use super::pipeline::{now_ms, Pipeline};
+use crate::shutdown::Shutdown;
+use crate::telemetry::http::Served;
+use crate::telemetry::Metrics;
+
+pub struct SourceContext {
+    pub pipeline: Arc<Mutex<Pipeline>>,
+    pub metrics: Arc<Metrics>,
+    pub served: Arc<Served>,
+    pub input_topic: String,
+}
+
+fn lock(p: &Mutex<Pipeline>) -> MutexGuard<'_, Pipeline> {
+    p.lock().unwrap_or_else(|poisoned| poisoned.into_inner())
+}
+
+impl ClientContext for SourceContext {
+    fn stats(&self, stats: Statistics) {
+        if let Some(t) = stats.topics.get(&self.input_topic) {
+            for (p, s) in &t.partitions {
+                if *p >= 0 && s.consumer_lag >= 0 {
+                    self.metrics.consumer_lag.with_label_values(&[&self.input_topic, &p.to_string()]).set(s.consumer_lag);
+                }
+            }
+        }
+    }
+}
+
+impl ConsumerContext for SourceContext {
+    fn rebalance(&self, consumer: &BaseConsumer<Self>, err: RDKafkaRespErr, tpl: &mut TopicPartitionList) {
+        let cooperative = matches!(consumer.rebalance_protocol(), RebalanceProtocol::Cooperative);
+        let parts: Vec<i32> = tpl.elements().iter().filter(|e| e.topic() == self.input_topic).map(|e| e.partition()).collect();
+        match err {
+            RDKafkaRespErr::RD_KAFKA_RESP_ERR__ASSIGN_PARTITIONS => {
+                let offsets = lock(&self.pipeline).assign(&parts);
+                let mut take = TopicPartitionList::new();
+                for (p, off) in offsets {
+                    if let Err(e) = take.add_partition_offset(&self.input_topic, p, off) {
+                        tracing::error!(partition = p, "cannot set the start offset: {e}");
+                    }
+                }
+                let r = if cooperative { consumer.incremental_assign(&take) } else { consumer.assign(&take) };
+                if let Err(e) = r {
+                    tracing::error!("cannot take the assignment: {e}");
+                }
+                self.served.set_ready(true);
+            }
+            RDKafkaRespErr::RD_KAFKA_RESP_ERR__REVOKE_PARTITIONS => {
+                let offsets = lock(&self.pipeline).revoke(&parts);
+                commit(consumer, &self.input_topic, &offsets, CommitMode::Sync);
+                let r = if cooperative { consumer.incremental_unassign(tpl) } else { consumer.unassign() };
+                if let Err(e) = r {
+                    tracing::error!("cannot hand the assignment back: {e}");
+                }
+            }
+            other => {
+                tracing::error!("rebalance error: {other:?}");
+                let owned = lock(&self.pipeline).owned_partitions();
+                let offsets = lock(&self.pipeline).revoke(&owned);
+                commit(consumer, &self.input_topic, &offsets, CommitMode::Sync);
+                let _ = consumer.unassign();
+            }
+        }
+    }
+}
+
+/// Moves the group's committed offsets to the snapshots' (for lag reporting; recovery reads
+/// the snapshot's offset, not this one).
+pub fn commit<C: Consumer<SourceContext>>(consumer: &C, topic: &str, offsets: &[(i32, i64)], mode: CommitMode) {
+    if offsets.is_empty() {
+        return;
+    }
+    let mut tpl = TopicPartitionList::new();
+    for &(p, o) in offsets {
+        let _ = tpl.add_partition_offset(topic, p, Offset::Offset(o));
+    }
+    if let Err(e) = consumer.commit(&tpl, mode) {
+        tracing::warn!("cannot commit offsets: {e}");
+    }
+}
+
+/// Runs until shutdown: read, apply, publish on the interval, snapshot on the interval. On
+/// shutdown: publish, snapshot, commit, and leave the group.
+pub fn run(consumer: BaseConsumer<SourceContext>, pipeline: Arc<Mutex<Pipeline>>, shutdown: Shutdown) {
+    let topic = consumer.context().input_topic.clone();
+    let mut errors_logged = 0u32;
+    while !shutdown.is_triggered() {
+        match consumer.poll(Duration::from_millis(100)) {
+            Some(Ok(m)) => {
+                let (p, o) = (m.partition(), m.offset());
+                lock(&pipeline).on_message(p, o, m.key(), m.payload(), now_ms());
+            }
+            Some(Err(e)) => {
+                if errors_logged < 20 {
+                    tracing::warn!("consumer: {e}");
+                    errors_logged += 1;
+                }
+            }
+            None => errors_logged = 0,
+        }
+        let offsets = {
+            let mut p = lock(&pipeline);
+            p.publish_due(false);
+            p.snapshot_due()
+        };
+        commit(&consumer, &topic, &offsets, CommitMode::Async);
+    }
+    tracing::info!("stopping: publishing and writing snapshots");
+    let offsets = {
+        let mut p = lock(&pipeline);
+        p.publish_due(true);
+        let owned = p.owned_partitions();
+        p.snapshot(&owned)
+    };
+    commit(&consumer, &topic, &offsets, CommitMode::Sync);
+    consumer.unsubscribe();
+}
