@@ -65,7 +65,7 @@ impl Guardrails {
                 return Err(format!("pinned.{arm}: no arm {arm:?} is declared; declared arms: {}", arms.join(", ")));
             }
         }
-        let pinned: f64 = self.pinned.values().sum();
+        let pinned: f64 = self.pinned.values().sum::<f64>() + 0.0;
         if pinned > 1.0 + FLOOR_SLACK {
             return Err(format!("pinned weights add up to {pinned}; they must add up to at most 1"));
         }
@@ -88,7 +88,7 @@ impl Guardrails {
         if self.floor <= 0.0 {
             return usize::MAX;
         }
-        let pinned: f64 = self.pinned.values().sum();
+        let pinned: f64 = self.pinned.values().sum::<f64>() + 0.0;
         (((1.0 - pinned) / self.floor) + FLOOR_SLACK).floor().max(0.0) as usize
     }
 

@@ -20,7 +20,7 @@ pub const WORLD: &[Truth] = &[
     },
     Truth {
         experiment: "feed-ranker",
-        arms: &[("recency", 18.0), ("chef-affinity", 27.0), ("seasonal", 22.0)],
+        arms: &[("recency", 14.0), ("chef-affinity", 30.0), ("seasonal", 20.0)],
         reward_max: Some(60.0),
         traffic: 0.30,
     },

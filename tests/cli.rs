@@ -1,0 +1,97 @@
+//! The command line as people meet it: configuration errors, `check`, and the demo.
+
+use std::process::Command;
+
+fn apportion() -> Command {
+    let mut c = Command::new(env!("CARGO_BIN_EXE_apportion"));
+    for (k, _) in std::env::vars() {
+        if k.starts_with("APPORTION_") {
+            c.env_remove(k);
+        }
+    }
+    c
+}
+
+fn write_config(name: &str, text: &str) -> std::path::PathBuf {
+    let dir = std::env::temp_dir().join(format!("apportion-cli-{:016x}", rand::random::<u64>()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let p = dir.join(name);
+    std::fs::write(&p, text).unwrap();
+    p
+}
+
+#[test]
+fn each_configuration_error_exits_2_naming_the_key() {
+    let cases = [
+        ("[publish]\ninterval_seconds = -1\n", "publish.interval_seconds"),
+        ("[publsh]\ninterval_seconds = 1\n", "publsh"),
+        ("[kafka]\nbrokers = \"\"\n", "kafka.brokers"),
+        ("[kafka]\ninput_topic = \"has space\"\n", "kafka.input_topic"),
+        ("[metrics]\nlisten = \"nowhere\"\n", "metrics.listen"),
+        ("[limits]\nduplicate_window = 0\n", "limits.duplicate_window"),
+        ("[log]\nformat = \"xml\"\n", "log.format"),
+        ("[defaults]\npolicy = { name = \"greedy\" }\n", "greedy"),
+        ("[defaults]\npolicy = { name = \"ucb1\", c = 2 }\n", "c"),
+        ("[defaults]\nguardrails = { floor = 1.5 }\n", "floor"),
+        ("[[experiments]]\nid = \"x\"\narms = [\"a\", \"b\", \"c\"]\nguardrails = { floor = 0.4 }\n", "floor"),
+        ("[[experiments]]\nid = \"x\"\narms = [\"a\"]\nguardrails = { pinned = { zz = 0.5 } }\n", "pinned.zz"),
+        ("[[experiments]]\nid = \"bad id\"\n", "experiments[0].id"),
+        ("[[experiments]]\nid = \"x\"\nreward = { kind = \"bounded\", max = 0 }\n", "max"),
+        ("[kafka.client]\n\"group.id\" = \"other\"\n", "group.id"),
+    ];
+    for (text, key) in cases {
+        let p = write_config("bad.toml", text);
+        let out = apportion().args(["check", "--config"]).arg(&p).output().unwrap();
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert_eq!(out.status.code(), Some(2), "{text}: {err}");
+        assert!(err.contains(key), "{text}: message does not name {key}: {err}");
+    }
+    let out = apportion().args(["check", "--config", "/nonexistent/apportion.toml"]).output().unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    let out = apportion().args(["run", "--config", "/nonexistent/apportion.toml"]).output().unwrap();
+    assert_eq!(out.status.code(), Some(2), "run refuses before starting anything");
+}
+
+#[test]
+fn an_environment_variable_overrides_a_key_and_is_checked_like_one() {
+    let out = apportion().args(["check", "--config", "config/apportion.toml"]).env("APPORTION_KAFKA__BROKERS", "kafka-9:9092").output().unwrap();
+    assert!(out.status.success());
+    assert!(String::from_utf8_lossy(&out.stdout).contains("brokers kafka-9:9092"));
+    let out = apportion()
+        .args(["check", "--config", "config/apportion.toml"])
+        .env("APPORTION_PUBLISH__INTERVAL_SECONDS", "soon")
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("publish.interval_seconds"));
+}
+
+#[test]
+fn check_prints_the_resolved_experiments_and_never_a_secret() {
+    let p = write_config(
+        "secret.toml",
+        "[kafka.client]\n\"security.protocol\" = \"SASL_SSL\"\n\"sasl.password\" = \"pw-in-file-7731\"\n\"ssl.key.password\" = \"pw-key-5521\"\n",
+    );
+    let out = apportion()
+        .args(["check", "--config"])
+        .arg(&p)
+        .env("APPORTION_KAFKA__CLIENT__SASL_USERNAME", "svc")
+        .output()
+        .unwrap();
+    let text = format!("{}{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
+    assert!(out.status.success(), "{text}");
+    assert!(!text.contains("pw-in-file-7731") && !text.contains("pw-key-5521"), "{text}");
+    assert!(text.contains("sasl.password = <redacted>") && text.contains("sasl.username = svc"), "{text}");
+    let out = apportion().args(["check", "--config", "config/apportion.toml"]).output().unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(text.contains("experiment homepage-hero") && text.contains("control pinned at 0.2"), "{text}");
+}
+
+#[test]
+fn the_demo_ends_with_the_best_arm_of_each_experiment_holding_the_largest_weight() {
+    let out = apportion().args(["demo", "--seconds", "20", "--seed", "7"]).output().unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success(), "{text}{}", String::from_utf8_lossy(&out.stderr));
+    // The demo's own scenario (config/demo.toml, src/demo/scenario.rs) has three experiments.
+    assert_eq!(text.matches("— found").count(), 3, "{text}");
+}

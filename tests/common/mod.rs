@@ -1,0 +1,186 @@
+//! Shared pieces of the tests that run against a real broker: the broker's address (started by
+//! scripts/test), unique topic names, an in-process sidecar, and plain clients to feed and read
+//! topics. Every wait is bounded by a deadline.
+#![allow(dead_code)]
+
+use std::io::{Read, Write};
+use std::net::TcpStream;
+use std::time::{Duration, Instant};
+
+use apportion::config::Config;
+use apportion::shutdown::Shutdown;
+use rdkafka::config::ClientConfig;
+use rdkafka::consumer::{BaseConsumer, Consumer};
+use rdkafka::message::OwnedMessage;
+use rdkafka::producer::{BaseProducer, BaseRecord, Producer};
+use rdkafka::{Offset, TopicPartitionList};
+
+/// The broker scripts/test started; tests that need one cannot run without it.
+pub fn brokers() -> String {
+    std::env::var("APPORTION_TEST_BROKERS")
+        .expect("APPORTION_TEST_BROKERS is not set: run the tests with scripts/test, which starts a broker")
+}
+
+pub fn unique(prefix: &str) -> String {
+    format!("{prefix}-{:016x}", rand::random::<u64>())
+}
+
+pub fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0").and_then(|l| l.local_addr()).map(|a| a.port()).expect("a free port")
+}
+
+/// A configuration with its own topics, group and metrics port.
+pub fn config(name: &str, partitions: i32) -> Config {
+    let mut cfg = Config::default();
+    let id = unique(name);
+    cfg.kafka.brokers = brokers();
+    cfg.kafka.group_id = format!("{id}.group");
+    cfg.kafka.input_topic = format!("{id}.events");
+    cfg.kafka.weights_topic = format!("{id}.weights");
+    cfg.kafka.state_topic = format!("{id}.state");
+    cfg.kafka.dead_letter_topic = format!("{id}.dead-letter");
+    cfg.kafka.topic_partitions = partitions;
+    cfg.metrics.listen = format!("127.0.0.1:{}", free_port());
+    cfg.publish.interval_seconds = 0.2;
+    cfg.snapshot.interval_seconds = 1.0;
+    cfg
+}
+
+/// A sidecar running in this process on its own runtime.
+pub struct Sidecar {
+    pub addr: String,
+    shutdown: Shutdown,
+    thread: Option<std::thread::JoinHandle<anyhow::Result<()>>>,
+}
+
+impl Sidecar {
+    pub fn start(cfg: Config) -> Sidecar {
+        let shutdown = Shutdown::new();
+        let stop = shutdown.clone();
+        let addr = cfg.metrics.listen.clone();
+        let thread = std::thread::spawn(move || {
+            let rt = tokio::runtime::Runtime::new()?;
+            rt.block_on(apportion::cli::serve_sidecar(cfg, stop, false))
+        });
+        Sidecar { addr, shutdown, thread: Some(thread) }
+    }
+
+    pub fn wait_ready(&self, within: Duration) {
+        let ok = wait_until(within, || http_get(&self.addr, "/readyz").map(|(s, _)| s == 200).unwrap_or(false));
+        assert!(ok, "sidecar on {} not ready within {within:?}", self.addr);
+    }
+
+    pub fn get(&self, path: &str) -> (u16, String) {
+        http_get(&self.addr, path).unwrap_or_else(|e| panic!("GET {path}: {e}"))
+    }
+
+    pub fn stop(mut self) {
+        self.shutdown.trigger();
+        if let Some(t) = self.thread.take() {
+            t.join().expect("sidecar thread").expect("sidecar ran without error");
+        }
+    }
+}
+
+impl Drop for Sidecar {
+    fn drop(&mut self) {
+        self.shutdown.trigger();
+    }
+}
+
+/// Polls `f` until it holds or `within` has passed.
+pub fn wait_until(within: Duration, mut f: impl FnMut() -> bool) -> bool {
+    let deadline = Instant::now() + within;
+    while Instant::now() < deadline {
+        if f() {
+            return true;
+        }
+        std::thread::sleep(Duration::from_millis(100));
+    }
+    f()
+}
+
+/// A minimal HTTP/1.1 GET on loopback.
+pub fn http_get(addr: &str, path: &str) -> std::io::Result<(u16, String)> {
+    let mut s = TcpStream::connect(addr)?;
+    s.set_read_timeout(Some(Duration::from_secs(5)))?;
+    write!(s, "GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n")?;
+    let mut raw = String::new();
+    s.read_to_string(&mut raw)?;
+    let status = raw.split_whitespace().nth(1).and_then(|c| c.parse().ok()).unwrap_or(0);
+    let body = raw.split_once("\r\n\r\n").map(|(_, b)| b.to_string()).unwrap_or_default();
+    let body = if raw.to_ascii_lowercase().contains("transfer-encoding: chunked") { dechunk(&body) } else { body };
+    Ok((status, body))
+}
+
+fn dechunk(body: &str) -> String {
+    let mut out = String::new();
+    let mut rest = body;
+    while let Some((size, tail)) = rest.split_once("\r\n") {
+        let n = usize::from_str_radix(size.trim(), 16).unwrap_or(0);
+        if n == 0 || tail.len() < n {
+            break;
+        }
+        out.push_str(&tail[..n]);
+        rest = tail[n..].trim_start_matches("\r\n");
+    }
+    out
+}
+
+/// Produces `(key, value)` messages and waits until the broker has them all.
+pub fn produce(topic: &str, messages: &[(String, Vec<u8>)]) {
+    let p: BaseProducer = ClientConfig::new().set("bootstrap.servers", brokers()).set("linger.ms", "5").create().expect("producer");
+    for (k, v) in messages {
+        let mut rec = BaseRecord::to(topic).key(k.as_bytes()).payload(&v[..]);
+        loop {
+            match p.send(rec) {
+                Ok(()) => break,
+                Err((_, r)) => {
+                    rec = r;
+                    p.poll(Duration::from_millis(50));
+                }
+            }
+        }
+        p.poll(Duration::ZERO);
+    }
+    p.flush(Duration::from_secs(30)).expect("all messages delivered");
+}
+
+/// Reads every message of `topic` from the beginning, with a plain consumer, until `enough`
+/// says so or `within` has passed.
+pub fn read_topic(topic: &str, within: Duration, mut enough: impl FnMut(&[OwnedMessage]) -> bool) -> Vec<OwnedMessage> {
+    let c: BaseConsumer = ClientConfig::new()
+        .set("bootstrap.servers", brokers())
+        .set("group.id", unique("reader"))
+        .set("enable.auto.commit", "false")
+        .create()
+        .expect("consumer");
+    let md = c.fetch_metadata(Some(topic), Duration::from_secs(10)).expect("metadata");
+    let mut tpl = TopicPartitionList::new();
+    for t in md.topics().iter().filter(|t| t.name() == topic) {
+        for p in t.partitions() {
+            tpl.add_partition_offset(topic, p.id(), Offset::Beginning).expect("offset");
+        }
+    }
+    c.assign(&tpl).expect("assign");
+    let mut out = Vec::new();
+    let deadline = Instant::now() + within;
+    while Instant::now() < deadline && !enough(&out) {
+        if let Some(Ok(m)) = c.poll(Duration::from_millis(200)) {
+            out.push(m.detach());
+        }
+    }
+    out
+}
+
+/// The value of series `name` carrying every label pair in `labels`, from a scrape.
+pub fn metric(scrape: &str, name: &str, labels: &[(&str, &str)]) -> Option<f64> {
+    scrape.lines().filter(|l| !l.starts_with('#')).find_map(|l| {
+        let (series, value) = l.rsplit_once(' ')?;
+        let (n, rest) = series.split_once('{').unwrap_or((series, ""));
+        if n != name || !labels.iter().all(|(k, v)| rest.contains(&format!("{k}=\"{v}\""))) {
+            return None;
+        }
+        value.parse().ok()
+    })
+}
