@@ -1,0 +1,66 @@
+//! Speed of the pure core: applying events, weights per policy, all weights of a large instance.
+//! Run with `cargo bench --bench core`; figures go to BENCHMARKS.md.
+
+use std::hint::black_box;
+
+use apportion::core::{Experiment, ExperimentSpec, Observation, PolicyName, PolicySpec, RewardModel};
+use criterion::{criterion_group, criterion_main, BatchSize, Criterion, Throughput};
+
+fn experiment(policy: PolicyName, arms: usize, pulls: u64) -> Experiment {
+    let names: Vec<String> = (0..arms).map(|j| format!("arm-{j}")).collect();
+    let mut spec = PolicySpec::new(policy);
+    if policy == PolicyName::Fixed {
+        spec.weights = names.iter().map(|n| (n.clone(), 1.0)).collect();
+    }
+    let mut e = Experiment::new(ExperimentSpec::new(spec, RewardModel::Bernoulli), &names).unwrap();
+    for (j, _) in names.iter().enumerate() {
+        e.observe(j, 0, Observation::Impression { count: pulls }).unwrap();
+        let rate = 0.03 + 0.002 * j as f64;
+        for _ in 0..(rate * pulls as f64) as u64 {
+            e.observe(j, 0, Observation::Reward { value: 1.0 }).unwrap();
+        }
+    }
+    e
+}
+
+fn apply(c: &mut Criterion) {
+    let mut g = c.benchmark_group("apply");
+    const N: u64 = 1_000_000;
+    g.throughput(Throughput::Elements(N));
+    g.bench_function("impressions_by_arm_name", |b| {
+        b.iter_batched(
+            || experiment(PolicyName::Thompson, 10, 0),
+            |mut e| {
+                for i in 0..N {
+                    let name = if i % 2 == 0 { "arm-3" } else { "arm-7" };
+                    let j = e.arm(name).unwrap();
+                    e.observe(j, i as i64, Observation::Impression { count: 1 }).unwrap();
+                }
+                e
+            },
+            BatchSize::LargeInput,
+        )
+    });
+    g.finish();
+}
+
+fn weights(c: &mut Criterion) {
+    let mut g = c.benchmark_group("weights");
+    for policy in [PolicyName::Thompson, PolicyName::Ucb1, PolicyName::KlUcb, PolicyName::EpsilonGreedy, PolicyName::Fixed] {
+        for arms in [2, 10, 50] {
+            let e = experiment(policy, arms, 5_000);
+            g.bench_function(format!("{policy}/{arms}-arms/batch-1000"), |b| b.iter(|| black_box(e.weights(0, 1000))));
+        }
+    }
+    g.finish();
+}
+
+fn fleet(c: &mut Criterion) {
+    let fleet: Vec<Experiment> = (0..1000).map(|i| experiment(PolicyName::Thompson, 10, 1000 + i)).collect();
+    c.bench_function("all_weights/1000-experiments-x-10-arms/thompson", |b| {
+        b.iter(|| fleet.iter().map(|e| e.weights(0, 1000)[0]).sum::<f64>())
+    });
+}
+
+criterion_group!(benches, apply, weights, fleet);
+criterion_main!(benches);
