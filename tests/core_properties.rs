@@ -1,0 +1,379 @@
+//! Properties of the pure core over random experiments: the weight invariants of SPEC.md
+//! ("Weights message", "Policies"), batch shares against a direct replay of the index policy,
+//! configuration errors, and the determinism that exact replay after a crash relies on.
+
+use std::collections::BTreeMap;
+
+use apportion::core::policy::{ArmInput, IndexRule, KlUcb, Ucb1};
+use apportion::core::{Experiment, ExperimentSpec, Guardrails, Observation, PolicyName, PolicySpec, RewardModel};
+use proptest::prelude::*;
+use rand::rngs::StdRng;
+use rand::SeedableRng;
+
+/// Tolerance of the weight invariants: SPEC.md, "the weights sum to 1 within 1e-9".
+const EPS: f64 = 1e-9;
+
+fn names(k: usize) -> Vec<String> {
+    (0..k).map(|j| format!("arm-{j}")).collect()
+}
+
+/// One arm's history: impressions, rewards of 1 among them, and rewards beyond the impressions
+/// (late or orphaned rewards, which the core clamps).
+#[derive(Clone, Debug)]
+struct ArmHistory {
+    pulls: u64,
+    successes: u64,
+    excess: u64,
+}
+
+fn arm_history() -> impl Strategy<Value = ArmHistory> {
+    (0u64..3000, 0.0f64..=1.0, prop_oneof![4 => Just(0u64), 1 => 1u64..5]).prop_map(|(pulls, rate, excess)| {
+        ArmHistory { pulls, successes: (pulls as f64 * rate * rate).round() as u64, excess }
+    })
+}
+
+fn apply(exp: &mut Experiment, arms: &[ArmHistory], ts: i64) {
+    for (j, a) in arms.iter().enumerate() {
+        if a.pulls > 0 {
+            exp.observe(j, ts, Observation::Impression { count: a.pulls }).expect("impression");
+        }
+        for _ in 0..a.successes + a.excess {
+            exp.observe(j, ts, Observation::Reward { value: 1.0 }).expect("0/1 reward");
+        }
+    }
+}
+
+/// Every policy, with parameters valid for it.
+fn policy(k: usize) -> impl Strategy<Value = PolicySpec> {
+    prop_oneof![
+        Just(PolicySpec::new(PolicyName::Ucb1)),
+        prop_oneof![Just(0.0), Just(3.0)].prop_map(|c| PolicySpec { c: Some(c), ..PolicySpec::new(PolicyName::KlUcb) }),
+        (1.0f64..4.0, 1.0f64..4.0).prop_map(|(a, b)| PolicySpec {
+            prior_alpha: Some(a),
+            prior_beta: Some(b),
+            ..PolicySpec::new(PolicyName::Thompson)
+        }),
+        (5.5f64..20.0, 0.005f64..0.5).prop_map(|(c, d)| PolicySpec {
+            c: Some(c),
+            d: Some(d),
+            ..PolicySpec::new(PolicyName::EpsilonGreedy)
+        }),
+        prop::collection::vec(prop_oneof![1 => Just(0.0), 3 => 0.01f64..5.0], k).prop_map(move |shares| {
+            let mut spec = PolicySpec::new(PolicyName::Fixed);
+            spec.weights = names(shares.len()).into_iter().zip(shares).collect();
+            if spec.weights.values().all(|&w| w == 0.0) {
+                spec.weights.insert("arm-0".into(), 1.0);
+            }
+            spec
+        }),
+    ]
+}
+
+/// Guardrails that `Guardrails::validate` accepts for `k` declared arms: some pinned arms, a floor
+/// up to exactly what the free arms can hold, a cap, and a step limit. Two corners where the
+/// bounds cannot hold by construction are not generated, because validate rejects them (see
+/// `impossible_pins_and_caps_are_configuration_errors`): every arm pinned with pins adding up to
+/// less than 1, and a cap with pinned + K·cap < 1.
+fn guardrails(k: usize) -> impl Strategy<Value = Guardrails> {
+    (
+        0..k.min(3),
+        prop::collection::vec(0.05f64..1.0, 3),
+        prop_oneof![1 => Just(0.0), 1 => Just(1.0), 3 => 0.0f64..1.0],
+        prop_oneof![1 => Just(0.0), 1 => Just(1.0), 3 => 0.0f64..1.0],
+        prop::option::of(0.0f64..=1.0),
+        prop::option::of(0.001f64..=1.0),
+    )
+        .prop_map(move |(pinned_arms, raw_pins, pinned_mass, floor_frac, cap_frac, max_step)| {
+            let raw_total: f64 = raw_pins[..pinned_arms].iter().sum();
+            let pinned: BTreeMap<String, f64> = names(k)
+                .into_iter()
+                .zip(&raw_pins[..pinned_arms])
+                .map(|(n, &r)| (n, pinned_mass * r / raw_total))
+                .collect();
+            let rest = 1.0 - pinned.values().sum::<f64>();
+            let free = (k - pinned_arms) as f64;
+            let floor = floor_frac * rest.max(0.0) / free;
+            let lowest_cap = floor.max(rest / free).max(1e-6);
+            let cap = cap_frac.map(|f| (lowest_cap + f * (1.0 - lowest_cap)).min(1.0));
+            Guardrails { floor, cap, max_step, pinned }
+        })
+}
+
+fn experiment_setup() -> impl Strategy<Value = (ExperimentSpec, Vec<ArmHistory>, Vec<ArmHistory>, u64)> {
+    (2usize..=7).prop_flat_map(|k| {
+        (
+            policy(k),
+            guardrails(k),
+            prop::collection::vec(arm_history(), k),
+            prop::collection::vec(arm_history(), k),
+            prop_oneof![Just(1u64), 1u64..50, 50u64..5000],
+        )
+            .prop_map(|(policy, guardrails, first, second, batch)| {
+                let mut spec = ExperimentSpec::new(policy, RewardModel::Bernoulli);
+                spec.guardrails = guardrails;
+                (spec, first, second, batch)
+            })
+    })
+}
+
+/// The invariants of SPEC.md, "Weights message": every arm present, each weight ≥ 0, sum 1
+/// within 1e-9, floor, cap and pins hold.
+fn check_invariants(g: &Guardrails, names: &[String], w: &[f64]) -> Result<(), TestCaseError> {
+    prop_assert_eq!(w.len(), names.len(), "one weight per arm");
+    let sum: f64 = w.iter().sum();
+    prop_assert!((sum - 1.0).abs() <= EPS, "weights {:?} sum to {}", w, sum);
+    for (name, &x) in names.iter().zip(w) {
+        prop_assert!(x.is_finite() && x >= 0.0, "weight of {} is {}", name, x);
+        match g.pinned.get(name) {
+            Some(&pin) => prop_assert!((x - pin).abs() <= EPS, "pinned {} at {} got {}", name, pin, x),
+            None => {
+                prop_assert!(x >= g.floor - EPS, "{} got {} below the floor {}", name, x, g.floor);
+                if let Some(cap) = g.cap {
+                    prop_assert!(x <= cap + EPS, "{} got {} above the cap {}", name, x, cap);
+                }
+            }
+        }
+    }
+    Ok(())
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 256, ..ProptestConfig::default() })]
+
+    #[test]
+    fn weights_keep_every_guardrail_for_every_policy((spec, first, second, batch) in experiment_setup()) {
+        let arms = names(first.len());
+        let guard = spec.guardrails.clone();
+        prop_assert!(guard.validate(&arms).is_ok(), "generated guardrails are invalid: {:?}", guard.validate(&arms));
+        let mut exp = Experiment::new(spec, &arms).map_err(TestCaseError::fail)?;
+        apply(&mut exp, &first, 1_000);
+        let before = exp.allocate(1_000, batch).weights;
+        check_invariants(&guard, &arms, &before)?;
+
+        apply(&mut exp, &second, 2_000);
+        let after = exp.allocate(2_000, batch).weights;
+        check_invariants(&guard, &arms, &after)?;
+        if let Some(step) = guard.max_step {
+            // The arm set is unchanged, so the step limit must hold (SPEC.md, max_step).
+            for ((name, b), a) in arms.iter().zip(&before).zip(&after) {
+                prop_assert!((a - b).abs() <= step + EPS, "{} moved from {} to {}, beyond max_step {}", name, b, a, step);
+            }
+        }
+    }
+}
+
+/// Arms as the policies see them: at most one never pulled (two would tie at an infinite index).
+fn policy_inputs() -> impl Strategy<Value = Vec<(f64, f64)>> {
+    prop::collection::vec((1u32..5000, 0.0f64..=1.0), 2..=7).prop_flat_map(|arms| {
+        let k = arms.len();
+        (Just(arms), prop::option::weighted(0.2, 0..k)).prop_map(|(arms, unpulled)| {
+            arms.iter()
+                .enumerate()
+                .map(|(j, &(n, rate))| {
+                    let pulls = if unpulled == Some(j) { 0.0 } else { n as f64 };
+                    (pulls, (pulls * rate * rate).round())
+                })
+                .collect()
+        })
+    })
+}
+
+fn inputs<'a>(arms: &[(f64, f64)], names: &'a [String]) -> Vec<ArmInput<'a>> {
+    arms.iter().zip(names).map(|(&(pulls, successes), name)| ArmInput { name, pulls, successes }).collect()
+}
+
+/// The index of every arm at `t` plays, infinite for an arm never pulled (it is played first).
+fn indices<R: IndexRule>(rule: &R, arms: &[ArmInput], t: f64, counts: &[f64]) -> Vec<f64> {
+    let budget = rule.budget(t);
+    arms.iter()
+        .zip(counts)
+        .map(|(a, &n)| if n > 0.0 { rule.index(a.mean(), n, budget) } else { f64::INFINITY })
+        .collect()
+}
+
+/// SPEC.md, "Batch shares", done literally: B virtual pulls, each to the arm with the largest
+/// index (the first on ties), every mean held at its estimate and t fixed at N + (B − 1)/2.
+fn replay<R: IndexRule>(rule: &R, arms: &[ArmInput], batch: u64) -> Vec<f64> {
+    let t = arms.iter().map(|a| a.pulls).sum::<f64>() + (batch as f64 - 1.0) / 2.0;
+    let mut counts: Vec<f64> = arms.iter().map(|a| a.pulls).collect();
+    let mut virtual_pulls = vec![0.0; arms.len()];
+    for _ in 0..batch {
+        let idx = indices(rule, arms, t, &counts);
+        let best = (0..arms.len()).fold(0, |b, j| if idx[j] > idx[b] { j } else { b });
+        counts[best] += 1.0;
+        virtual_pulls[best] += 1.0;
+    }
+    virtual_pulls.iter().map(|v| v / batch as f64).collect()
+}
+
+/// An index policy's own replay of a batch: shares from B literal steps.
+type Replay = Box<dyn Fn(&[ArmInput], u64) -> Vec<f64>>;
+
+fn index_policies() -> [(PolicySpec, Replay); 3] {
+    [
+        (PolicySpec::new(PolicyName::Ucb1), Box::new(|a: &[ArmInput], b| replay(&Ucb1, a, b))),
+        (
+            PolicySpec { c: Some(0.0), ..PolicySpec::new(PolicyName::KlUcb) },
+            Box::new(|a: &[ArmInput], b| replay(&KlUcb { c: 0.0 }, a, b)),
+        ),
+        (
+            PolicySpec { c: Some(3.0), ..PolicySpec::new(PolicyName::KlUcb) },
+            Box::new(|a: &[ArmInput], b| replay(&KlUcb { c: 3.0 }, a, b)),
+        ),
+    ]
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 256, ..ProptestConfig::default() })]
+
+    #[test]
+    fn batch_of_one_is_the_sequential_choice_when_the_argmax_is_unique(arms in policy_inputs(), seed in any::<u64>()) {
+        let arm_names = names(arms.len());
+        let input = inputs(&arms, &arm_names);
+        let t = input.iter().map(|a| a.pulls).sum::<f64>();
+        let counts: Vec<f64> = input.iter().map(|a| a.pulls).collect();
+        let rules: [(PolicySpec, Vec<f64>); 2] = [
+            (PolicySpec::new(PolicyName::Ucb1), indices(&Ucb1, &input, t, &counts)),
+            (PolicySpec::new(PolicyName::KlUcb), indices(&KlUcb { c: 0.0 }, &input, t, &counts)),
+        ];
+        for (spec, idx) in rules {
+            let mut sorted = idx.clone();
+            sorted.sort_by(|a, b| b.total_cmp(a));
+            // Unique argmax, with a margin so that rounding cannot reorder the top two.
+            if sorted[0] <= sorted[1] + 1e-9 * sorted[1].abs().max(1.0) {
+                continue;
+            }
+            let policy = spec.build().map_err(TestCaseError::fail)?;
+            let mut rng = StdRng::seed_from_u64(seed);
+            let chosen = policy.choose(&input, &mut rng);
+            let mut w = vec![f64::NAN; input.len()];
+            policy.weights(&input, 1, &mut w);
+            for (j, &x) in w.iter().enumerate() {
+                let expected = if j == chosen { 1.0 } else { 0.0 };
+                prop_assert!((x - expected).abs() <= 1e-12, "{}: weights {:?}, sequential choice {}", spec, w, chosen);
+            }
+        }
+    }
+
+    #[test]
+    fn batch_shares_equal_a_step_by_step_replay_within_one_pull(
+        arms in prop::collection::vec((0u32..5000, 0.0f64..=1.0), 2..=7),
+        batch in prop_oneof![1u64..20, 20u64..2000],
+    ) {
+        let arms: Vec<(f64, f64)> = arms.iter().map(|&(n, r)| (n as f64, (n as f64 * r * r).round())).collect();
+        let arm_names = names(arms.len());
+        let input = inputs(&arms, &arm_names);
+        for (spec, direct) in index_policies() {
+            let policy = spec.build().map_err(TestCaseError::fail)?;
+            let mut w = vec![f64::NAN; input.len()];
+            policy.weights(&input, batch, &mut w);
+            let expected = direct(&input, batch);
+            let sum: f64 = w.iter().sum();
+            prop_assert!((sum - 1.0).abs() <= EPS, "{}: shares {:?} sum to {}", spec, w, sum);
+            for (j, (x, e)) in w.iter().zip(&expected).enumerate() {
+                // Ties may split a pull differently: one pull of B per arm (SPEC.md, batch shares).
+                prop_assert!(
+                    (x - e).abs() <= 1.0 / batch as f64 + EPS,
+                    "{} B = {}: arm {} share {} vs replay {} (shares {:?}, replay {:?})",
+                    spec, batch, j, x, e, w, expected
+                );
+            }
+        }
+    }
+
+    #[test]
+    fn a_floor_that_cannot_hold_is_rejected_naming_the_floor(k in 2usize..=20, over in 1e-6f64..1.0) {
+        let floor = ((1.0 + over) / k as f64).min(1.0 + over);
+        let mut spec = ExperimentSpec::new(PolicySpec::new(PolicyName::Thompson), RewardModel::Bernoulli);
+        spec.guardrails.floor = floor;
+        let err = Experiment::new(spec, &names(k)).err();
+        prop_assert!(err.as_deref().is_some_and(|e| e.contains("floor")), "K = {} floor = {}: {:?}", k, floor, err);
+    }
+
+    #[test]
+    fn pins_summing_over_one_are_rejected_naming_the_pins(
+        pins in prop::collection::vec(0.05f64..=1.0, 2..=4),
+        over in 1e-6f64..0.5,
+    ) {
+        let total: f64 = pins.iter().sum();
+        let arms = names(pins.len() + 1);
+        let mut spec = ExperimentSpec::new(PolicySpec::new(PolicyName::Ucb1), RewardModel::Bernoulli);
+        spec.guardrails.pinned = arms.iter().cloned().zip(pins.iter().map(|p| p * (1.0 + over) / total)).collect();
+        let err = Experiment::new(spec, &arms).err();
+        prop_assert!(err.as_deref().is_some_and(|e| e.contains("pinned")), "pins {:?}: {:?}", pins, err);
+    }
+}
+
+/// One event as the source would hand it to the core.
+#[derive(Clone, Debug)]
+enum Event {
+    Impression { arm: usize, ts: i64, count: u64 },
+    Reward { arm: usize, ts: i64, fraction: f64 },
+}
+
+fn events() -> impl Strategy<Value = Vec<Event>> {
+    prop::collection::vec(
+        prop_oneof![
+            (0usize..5, 0i64..100_000, 1u64..20).prop_map(|(arm, ts, count)| Event::Impression { arm, ts, count }),
+            (0usize..5, 0i64..100_000, 0.0f64..=1.0).prop_map(|(arm, ts, fraction)| Event::Reward { arm, ts, fraction }),
+        ],
+        0..300,
+    )
+}
+
+fn replay_events(spec: &ExperimentSpec, events: &[Event]) -> Experiment {
+    let mut exp = Experiment::new(spec.clone(), &[]).expect("valid spec");
+    for e in events {
+        let (arm, ts, obs) = match *e {
+            Event::Impression { arm, ts, count } => (arm, ts, Observation::Impression { count }),
+            Event::Reward { arm, ts, fraction } => {
+                let value = match spec.reward {
+                    RewardModel::Bernoulli => f64::from(u8::from(fraction >= 0.5)),
+                    RewardModel::Bounded { max } => fraction * max,
+                };
+                (arm, ts, Observation::Reward { value })
+            }
+        };
+        let j = exp.arm_or_add(&format!("arm-{arm}")).expect("arm within limits");
+        exp.observe(j, ts, obs).expect("reward within range");
+    }
+    exp
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 256, ..ProptestConfig::default() })]
+
+    #[test]
+    fn the_same_events_in_the_same_order_give_bit_identical_state(
+        events in events(),
+        policy in policy(5),
+        bounded in prop::option::of(0.5f64..100.0),
+        half_life in prop::option::of(1.0f64..50_000.0),
+    ) {
+        let reward = bounded.map_or(RewardModel::Bernoulli, |max| RewardModel::Bounded { max });
+        let mut spec = ExperimentSpec::new(policy, reward);
+        spec.half_life_ms = half_life;
+        let a = replay_events(&spec, &events);
+        let b = replay_events(&spec, &events);
+        let (sa, sb) = (serde_json::to_string(&a.state()), serde_json::to_string(&b.state()));
+        prop_assert!(sa.is_ok(), "state does not serialise: {:?}", sa);
+        prop_assert_eq!(&sa.as_ref().ok(), &sb.as_ref().ok());
+        // A snapshot restores the same state bit for bit (SPEC.md, recovery promise).
+        let arm_names: Vec<String> = a.arm_names().to_vec();
+        let restored = Experiment::restore(spec.clone(), &[], a.state()).map_err(TestCaseError::fail)?;
+        prop_assert_eq!(&sa.ok(), &serde_json::to_string(&restored.state()).ok());
+        prop_assert_eq!(restored.arm_names(), &arm_names[..]);
+        // Weights are deterministic too: randomness belongs to `choose` only.
+        let (wa, wb) = (a.weights(100_000, 100), b.weights(100_000, 100));
+        prop_assert_eq!(wa.iter().map(|w| w.to_bits()).collect::<Vec<_>>(), wb.iter().map(|w| w.to_bits()).collect::<Vec<_>>());
+    }
+}
+
+#[test]
+fn impossible_pins_and_caps_are_configuration_errors() {
+    let arms: Vec<String> = ["a", "b"].iter().map(|s| s.to_string()).collect();
+    let all_pinned = Guardrails { pinned: [("a".to_string(), 0.3), ("b".to_string(), 0.3)].into(), ..Guardrails::default() };
+    assert!(all_pinned.validate(&arms).unwrap_err().contains("pinned"));
+    let low_cap = Guardrails { cap: Some(0.2), ..Guardrails::default() };
+    assert!(low_cap.validate(&arms).unwrap_err().contains("cap"));
+}
