@@ -77,6 +77,17 @@ impl Guardrails {
                 ((1.0 - pinned) / free.max(1.0) * 1e6).floor() / 1e6
             ));
         }
+        if !arms.is_empty() && free == 0.0 && (pinned - 1.0).abs() > FLOOR_SLACK {
+            return Err(format!("every arm is pinned, so the pinned weights must add up to 1; they add up to {pinned}"));
+        }
+        if let Some(cap) = self.cap {
+            if free > 0.0 && pinned + free * cap < 1.0 - FLOOR_SLACK {
+                return Err(format!(
+                    "cap = {cap} cannot hold for {free} unpinned arms with {pinned} pinned (K·cap + pinned < 1); raise the cap to at least {}",
+                    ((1.0 - pinned) / free * 1e6).ceil() / 1e6
+                ));
+            }
+        }
         if arms.is_empty() && !self.pinned.is_empty() {
             return Err("pinned arms need declared arms; experiments created on first sight cannot pin".into());
         }

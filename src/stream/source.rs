@@ -62,6 +62,10 @@ impl ConsumerContext for SourceContext {
                 self.served.set_ready(true);
             }
             RDKafkaRespErr::RD_KAFKA_RESP_ERR__REVOKE_PARTITIONS => {
+                if !cooperative {
+                    // Everything is handed back until the group settles: not ready meanwhile.
+                    self.served.set_ready(false);
+                }
                 let offsets = lock(&self.pipeline).revoke(&parts);
                 commit(consumer, &self.input_topic, &offsets, CommitMode::Sync);
                 let r = if cooperative { consumer.incremental_unassign(tpl) } else { consumer.unassign() };

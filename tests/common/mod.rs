@@ -17,8 +17,8 @@ use rdkafka::{Offset, TopicPartitionList};
 
 /// The broker scripts/test started; tests that need one cannot run without it.
 pub fn brokers() -> String {
-    std::env::var("APPORTION_TEST_BROKERS")
-        .expect("APPORTION_TEST_BROKERS is not set: run the tests with scripts/test, which starts a broker")
+    std::env::var("TEST_KAFKA_BROKERS")
+        .expect("TEST_KAFKA_BROKERS is not set: run the tests with scripts/test, which starts a broker")
 }
 
 pub fn unique(prefix: &str) -> String {
@@ -183,4 +183,155 @@ pub fn metric(scrape: &str, name: &str, labels: &[(&str, &str)]) -> Option<f64> 
         }
         value.parse().ok()
     })
+}
+
+/// The TOML of a sidecar configuration with its own topics and group, for child processes.
+pub struct ProcConfig {
+    pub id: String,
+    pub brokers: String,
+    pub partitions: i32,
+    pub port: u16,
+    /// Consumer session timeout. Short by default so that a killed instance's partitions move
+    /// on quickly; longer than any broker pause a test makes, so the pause does not expire it.
+    pub session_timeout_ms: u32,
+    pub extra: String,
+}
+
+impl ProcConfig {
+    pub fn new(name: &str, brokers: &str, partitions: i32) -> Self {
+        ProcConfig {
+            id: unique(name),
+            brokers: brokers.to_string(),
+            partitions,
+            port: free_port(),
+            session_timeout_ms: 6000,
+            extra: String::new(),
+        }
+    }
+
+    pub fn topic(&self, which: &str) -> String {
+        format!("{}.{which}", self.id)
+    }
+
+    /// Writes the file; `port` is this instance's metrics port.
+    pub fn write(&self, port: u16) -> std::path::PathBuf {
+        let text = format!(
+            r#"[kafka]
+brokers = "{brokers}"
+group_id = "{id}.group"
+input_topic = "{id}.events"
+weights_topic = "{id}.weights"
+state_topic = "{id}.state"
+dead_letter_topic = "{id}.dead-letter"
+topic_partitions = {partitions}
+
+[kafka.client]
+"session.timeout.ms" = "{session}"
+"heartbeat.interval.ms" = "{heartbeat}"
+
+[publish]
+interval_seconds = 0.2
+heartbeat_seconds = 5
+
+[snapshot]
+interval_seconds = 0.5
+
+[metrics]
+listen = "127.0.0.1:{port}"
+
+[log]
+level = "warn"
+{extra}
+"#,
+            brokers = self.brokers,
+            id = self.id,
+            partitions = self.partitions,
+            session = self.session_timeout_ms,
+            heartbeat = (self.session_timeout_ms / 6).max(500),
+            extra = self.extra,
+        );
+        let path = std::env::temp_dir().join(format!("{}-{port}.toml", self.id));
+        std::fs::write(&path, text).expect("config written");
+        path
+    }
+}
+
+/// The sidecar as a child process of its own binary.
+pub struct SidecarProcess {
+    pub addr: String,
+    pub child: std::process::Child,
+    config: std::path::PathBuf,
+}
+
+impl SidecarProcess {
+    pub fn start(cfg: &ProcConfig, port: u16) -> SidecarProcess {
+        let config = cfg.write(port);
+        let child = std::process::Command::new(env!("CARGO_BIN_EXE_apportion"))
+            .args(["run", "--config"])
+            .arg(&config)
+            .stdin(std::process::Stdio::null())
+            .stdout(std::process::Stdio::null())
+            .stderr(std::process::Stdio::inherit())
+            .spawn()
+            .expect("sidecar process started");
+        SidecarProcess { addr: format!("127.0.0.1:{port}"), child, config }
+    }
+
+    pub fn wait_ready(&self, within: Duration) -> bool {
+        wait_until(within, || http_get(&self.addr, "/readyz").map(|(s, _)| s == 200).unwrap_or(false))
+    }
+
+    /// SIGKILL: no snapshot, no goodbye.
+    pub fn crash(mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+
+    /// SIGTERM, then waits for a clean exit (bounded).
+    pub fn stop(mut self) -> bool {
+        signal(self.child.id(), "TERM");
+        let deadline = Instant::now() + Duration::from_secs(60);
+        while Instant::now() < deadline {
+            if let Ok(Some(status)) = self.child.try_wait() {
+                return status.success();
+            }
+            std::thread::sleep(Duration::from_millis(100));
+        }
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+        false
+    }
+
+    pub fn get(&self, path: &str) -> Option<(u16, String)> {
+        http_get(&self.addr, path).ok()
+    }
+}
+
+impl Drop for SidecarProcess {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+        let _ = std::fs::remove_file(&self.config);
+    }
+}
+
+/// Sends a signal (TERM, KILL, STOP, CONT) to a process with the system's `kill`.
+pub fn signal(pid: u32, name: &str) {
+    let _ = std::process::Command::new("kill").arg(format!("-{name}")).arg(pid.to_string()).status();
+}
+
+/// Per experiment and arm, (pulls, reward) from an `/experiments` body.
+pub fn totals(experiments_json: &str) -> std::collections::BTreeMap<(String, String), (u64, f64)> {
+    let v: serde_json::Value = serde_json::from_str(experiments_json).unwrap_or_default();
+    let mut out = std::collections::BTreeMap::new();
+    if let Some(exps) = v.as_object() {
+        for (exp, e) in exps {
+            if let Some(arms) = e["arms"].as_object() {
+                for (arm, a) in arms {
+                    out.insert((exp.clone(), arm.clone()), (a["pulls"].as_u64().unwrap_or(0), a["reward"].as_f64().unwrap_or(0.0)));
+                }
+            }
+        }
+    }
+    out
 }

@@ -1,0 +1,225 @@
+//! The recovery promise against real broker processes: nothing lost, nothing counted twice,
+//! across crashes (SIGKILL), hand-overs between instances, and a broker that stops answering.
+
+mod common;
+
+use std::collections::BTreeMap;
+use std::time::{Duration, Instant};
+
+use common::*;
+use rand::rngs::StdRng;
+use rand::{Rng, SeedableRng};
+use rdkafka::config::ClientConfig;
+use rdkafka::message::Message;
+use rdkafka::producer::{BaseProducer, BaseRecord, Producer};
+
+type Totals = BTreeMap<(String, String), (u64, f64)>;
+
+/// A seeded stream over `experiments` experiments of four arms, with about 2 % of events sent
+/// twice. Returns the messages and what must be applied (duplicates once).
+fn workload(events: usize, experiments: usize, seed: u64) -> (Vec<(String, Vec<u8>)>, Totals) {
+    let mut rng = StdRng::seed_from_u64(seed);
+    let mut out = Vec::with_capacity(events + events / 40);
+    let mut want: Totals = BTreeMap::new();
+    let t0 = apportion::stream::pipeline::now_ms() - 60_000;
+    for i in 0..events {
+        let exp = format!("exp-{}", rng.gen_range(0..experiments));
+        let arm = format!("arm-{}", rng.gen_range(0..4));
+        let reward = rng.gen::<f64>() < 0.2;
+        let kind = if reward { r#""kind":"reward","reward":1"# } else { r#""kind":"impression""# };
+        let body = format!(r#"{{"event_id":"e{i}",{kind},"experiment":"{exp}","arm":"{arm}","ts_ms":{}}}"#, t0 + i as i64);
+        let w = want.entry((exp.clone(), arm)).or_default();
+        if reward {
+            w.1 += 1.0;
+        } else {
+            w.0 += 1;
+        }
+        let twice = rng.gen::<f64>() < 0.02;
+        out.push((exp.clone(), body.into_bytes()));
+        if twice {
+            let dup = out.last().cloned().unwrap_or_default();
+            out.push(dup);
+        }
+    }
+    (out, want)
+}
+
+/// Streams `messages` in chunks over about `seconds`, on its own thread.
+fn stream_in_background(brokers: String, topic: String, messages: Vec<(String, Vec<u8>)>, seconds: f64) -> std::thread::JoinHandle<()> {
+    std::thread::spawn(move || {
+        let p: BaseProducer = ClientConfig::new()
+            .set("bootstrap.servers", &brokers)
+            .set("linger.ms", "20")
+            .set("queue.buffering.max.messages", "1000000")
+            .set("message.timeout.ms", "300000")
+            .create()
+            .expect("producer");
+        let chunks = 100usize;
+        let per = messages.len().div_ceil(chunks);
+        for chunk in messages.chunks(per.max(1)) {
+            for (k, v) in chunk {
+                let mut rec = BaseRecord::to(&topic).key(k.as_bytes()).payload(&v[..]);
+                loop {
+                    match p.send(rec) {
+                        Ok(()) => break,
+                        Err((_, r)) => {
+                            rec = r;
+                            p.poll(Duration::from_millis(20));
+                        }
+                    }
+                }
+            }
+            p.poll(Duration::ZERO);
+            std::thread::sleep(Duration::from_secs_f64(seconds / chunks as f64));
+        }
+        p.flush(Duration::from_secs(300)).expect("every event delivered");
+    })
+}
+
+fn assert_totals(got: &Totals, want: &Totals) {
+    for (k, w) in want {
+        let g = got.get(k).copied().unwrap_or_default();
+        assert_eq!(g, *w, "{k:?}: applied (pulls, reward) {g:?}, produced {w:?}");
+    }
+    assert_eq!(got.len(), want.len(), "no arm appears that was not produced");
+}
+
+/// Every weights message of every experiment came with a higher version than the one before.
+fn assert_versions_increase(weights_topic: &str, expected_experiments: usize) {
+    let msgs = read_topic(weights_topic, Duration::from_secs(30), |_| false);
+    let mut last: BTreeMap<String, u64> = BTreeMap::new();
+    for m in &msgs {
+        let v: serde_json::Value = serde_json::from_slice(m.payload().unwrap_or_default()).expect("weights JSON");
+        let exp = v["experiment"].as_str().unwrap_or_default().to_string();
+        let version = v["version"].as_u64().unwrap_or(0);
+        let prev = last.insert(exp.clone(), version).unwrap_or(0);
+        assert!(version > prev, "{exp}: version {version} published after {prev}");
+    }
+    assert_eq!(last.len(), expected_experiments, "every experiment published");
+}
+
+fn sum_totals(parts: &[String]) -> Totals {
+    let mut all: Totals = BTreeMap::new();
+    for body in parts {
+        for (k, v) in totals(body) {
+            assert!(all.insert(k.clone(), v).is_none(), "{k:?} held by two instances at once");
+        }
+    }
+    all
+}
+
+#[test]
+fn crashes_at_random_moments_lose_nothing_and_count_nothing_twice() {
+    let brokers = brokers();
+    let cfg = ProcConfig::new("crash", &brokers, 4);
+    let (messages, want) = workload(200_000, 8, 42);
+    let produced = messages.len();
+    let mut sidecar = SidecarProcess::start(&cfg, cfg.port);
+    assert!(sidecar.wait_ready(Duration::from_secs(60)), "first start");
+    let started = Instant::now();
+    let producer = stream_in_background(brokers.clone(), cfg.topic("events"), messages, 25.0);
+    let mut rng = StdRng::seed_from_u64(7);
+    let kills = 5;
+    for k in 0..kills {
+        std::thread::sleep(Duration::from_millis(rng.gen_range(1500..4000)));
+        sidecar.crash();
+        sidecar = SidecarProcess::start(&cfg, cfg.port);
+        assert!(sidecar.wait_ready(Duration::from_secs(90)), "restart {k}");
+    }
+    producer.join().expect("producer");
+    let mut last = Totals::new();
+    let done = wait_until(Duration::from_secs(240), || {
+        last = sidecar.get("/experiments").map(|(_, b)| totals(&b)).unwrap_or_default();
+        want.iter().all(|(k, w)| last.get(k) == Some(w))
+    });
+    eprintln!(
+        "crash test: {produced} events produced ({} distinct), {kills} kills survived, caught up {:.1}s after the start",
+        produced - (produced - want.values().map(|w| w.0 + w.1 as u64).sum::<u64>() as usize),
+        started.elapsed().as_secs_f64()
+    );
+    assert!(done, "not caught up");
+    assert_totals(&last, &want);
+    let scrape = sidecar.get("/metrics").map(|(_, b)| b).unwrap_or_default();
+    let applied = metric(&scrape, "apportion_events_total", &[("kind", "impression"), ("outcome", "applied")]).unwrap_or(0.0)
+        + metric(&scrape, "apportion_events_total", &[("kind", "reward"), ("outcome", "applied")]).unwrap_or(0.0);
+    let distinct: u64 = want.values().map(|w| w.0 + w.1 as u64).sum();
+    assert_eq!(applied as u64, distinct, "applied events counted once, across restarts");
+    assert!(sidecar.stop(), "clean shutdown");
+    assert_versions_increase(&cfg.topic("weights"), 8);
+}
+
+#[test]
+fn hand_overs_between_two_instances_keep_totals_exact_and_one_owner_per_experiment() {
+    let brokers = brokers();
+    let cfg = ProcConfig::new("handover", &brokers, 6);
+    let (messages, want) = workload(60_000, 12, 43);
+    let (pa, pb) = (free_port(), free_port());
+    let a = SidecarProcess::start(&cfg, pa);
+    assert!(a.wait_ready(Duration::from_secs(60)));
+    let mut b = SidecarProcess::start(&cfg, pb);
+    assert!(b.wait_ready(Duration::from_secs(60)));
+    let producer = stream_in_background(brokers.clone(), cfg.topic("events"), messages, 20.0);
+    std::thread::sleep(Duration::from_secs(4));
+    assert!(a.stop(), "a leaves cleanly");
+    let a = SidecarProcess::start(&cfg, pa);
+    assert!(a.wait_ready(Duration::from_secs(90)));
+    std::thread::sleep(Duration::from_secs(4));
+    assert!(b.stop(), "b leaves cleanly");
+    b = SidecarProcess::start(&cfg, pb);
+    assert!(b.wait_ready(Duration::from_secs(90)));
+    producer.join().expect("producer");
+    let mut last = Totals::new();
+    let done = wait_until(Duration::from_secs(180), || {
+        let parts: Vec<String> = [&a, &b].iter().filter_map(|s| s.get("/experiments").map(|(_, body)| body)).collect();
+        last = sum_totals(&parts);
+        want.iter().all(|(k, w)| last.get(k) == Some(w))
+    });
+    assert!(done, "not caught up: {last:?}");
+    assert_totals(&last, &want);
+    assert!(a.stop() && b.stop());
+    assert_versions_increase(&cfg.topic("weights"), 12);
+}
+
+#[test]
+fn a_broker_paused_mid_stream_loses_nothing() {
+    let port = free_port();
+    let mut broker = std::process::Command::new("tansu")
+        .args(["broker", "--listener-url"])
+        .arg(format!("tcp://127.0.0.1:{port}"))
+        .arg("--advertised-listener-url")
+        .arg(format!("tcp://127.0.0.1:{port}"))
+        .args(["--storage-engine", "memory://tansu/"])
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .expect("tansu on PATH (scripts/test installs it)");
+    let brokers = format!("127.0.0.1:{port}");
+    assert!(wait_until(Duration::from_secs(30), || std::net::TcpStream::connect(&brokers).is_ok()));
+    let mut cfg = ProcConfig::new("pause", &brokers, 3);
+    // The consumer's session outlives the pause (librdkafka's default, 45 s): a pause that
+    // expires it forces a rebalance, which tansu 0.6 holds open until the old member's
+    // rebalance timeout (max.poll.interval.ms) passes — a delay, not a loss.
+    cfg.session_timeout_ms = 45_000;
+    let (messages, want) = workload(40_000, 6, 44);
+    let sidecar = SidecarProcess::start(&cfg, cfg.port);
+    assert!(sidecar.wait_ready(Duration::from_secs(60)));
+    let producer = stream_in_background(brokers.clone(), cfg.topic("events"), messages, 20.0);
+    std::thread::sleep(Duration::from_secs(5));
+    signal(broker.id(), "STOP");
+    std::thread::sleep(Duration::from_secs(10));
+    signal(broker.id(), "CONT");
+    producer.join().expect("producer");
+    let mut last = Totals::new();
+    let done = wait_until(Duration::from_secs(180), || {
+        last = sidecar.get("/experiments").map(|(_, b)| totals(&b)).unwrap_or_default();
+        want.iter().all(|(k, w)| last.get(k) == Some(w))
+    });
+    if !done {
+        let diff: Vec<_> = want.iter().filter(|(k, w)| last.get(*k) != Some(w)).map(|(k, w)| (k, w, last.get(k))).take(5).collect();
+        panic!("not caught up after the pause: {diff:?}");
+    }
+    assert_totals(&last, &want);
+    assert!(sidecar.stop());
+    let _ = broker.kill();
+    let _ = broker.wait();
+}
