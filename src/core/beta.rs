@@ -4,24 +4,27 @@
 //! The integral is taken numerically, deterministically, on a grid built from each posterior's
 //! own scale, so a posterior with ten pulls and one with a hundred thousand are both resolved:
 //!
-//! 1. Each posterior is placed on [μ − 9σ, μ + 13σ] ∩ [0, 1] (the upper side is longer because
-//!    posteriors of rare events are right-skewed). The maximum of all arms almost surely lies
-//!    above L, the largest lower end; arms whose upper end is below L cannot be best and get 0.
-//! 2. The grid is L, the largest upper end, and 89 points per remaining arm at steps of σ/4.
-//! 3. Every CDF starts at L from the regularised incomplete beta function and is carried along
-//!    the grid by the cubic Hermite rule h/2·(f₀+f₁) + h²/12·(f₀′−f₁′), exact for cubics.
+//! 1. Each posterior is placed on [μ − 7σ, μ + 11σ] ∩ [0, 1] (the upper side is longer because
+//!    posteriors of rare events are right-skewed); outside it its density is taken as 0. The
+//!    maximum of all arms almost surely lies above L, the largest lower end, so arms whose upper
+//!    end is below L cannot be best and get 0.
+//! 2. The grid runs from the lowest lower end of the remaining arms to the largest upper end,
+//!    with points every 0.3σ of each remaining arm, thinned where arms overlap so that the spacing
+//!    stays near 0.3σ of the narrowest arm present there.
+//! 3. Every CDF starts at 0 at the grid's first point and is carried along the grid by the
+//!    cubic Hermite rule h/2·(f₀+f₁) + h²/12·(f₀′−f₁′), exact for cubics.
 //! 4. The outer integral uses Simpson's rule on each grid segment, the CDFs at the segment's
 //!    midpoint coming from the same Hermite cubic.
 //!
 //! The result is normalised to sum to 1. Tests compare it with scipy quadrature (tests/data).
 
-use statrs::function::beta::{beta_reg, ln_beta};
+use statrs::function::beta::ln_beta;
 
 /// Lower and upper reach of a posterior, in standard deviations.
-const REACH_BELOW: f64 = 9.0;
-const REACH_ABOVE: f64 = 13.0;
+const REACH_BELOW: f64 = 7.0;
+const REACH_ABOVE: f64 = 11.0;
 /// Grid step in standard deviations of the arm that owns the point.
-const STEP: f64 = 0.25;
+const STEP: f64 = 0.3;
 
 struct Posterior {
     a: f64,
@@ -29,11 +32,17 @@ struct Posterior {
     ln_norm: f64,
     /// 1 / B(a, b), the density's constant.
     norm: f64,
+    /// Reach of the posterior; the density is taken as 0 outside it.
+    lower: f64,
+    upper: f64,
 }
 
 impl Posterior {
-    /// Density and its derivative at x.
-    fn pdf(&self, x: f64) -> (f64, f64) {
+    /// Density and its derivative at x, given ln x and ln(1 − x) (shared by all arms).
+    fn pdf(&self, x: f64, ln_x: f64, ln_1mx: f64) -> (f64, f64) {
+        if x < self.lower || x > self.upper {
+            return (0.0, 0.0);
+        }
         // At the ends only a = 1 (or b = 1) leaves a non-zero density; a = 2 (b = 2) a non-zero
         // slope. Exponents between 1 and 2 have an infinite slope there, taken as 0.
         let c = self.norm;
@@ -51,10 +60,14 @@ impl Posterior {
                 _ => (0.0, 0.0),
             };
         }
-        let f = ((self.a - 1.0) * x.ln() + (self.b - 1.0) * (-x).ln_1p() - self.ln_norm).exp();
+        let f = ((self.a - 1.0) * ln_x + (self.b - 1.0) * ln_1mx - self.ln_norm).exp();
         let d = f * ((self.a - 1.0) / x - (self.b - 1.0) / (1.0 - x));
         (f, d)
     }
+}
+
+fn logs(x: f64) -> (f64, f64) {
+    (x.ln(), (-x).ln_1p())
 }
 
 /// Probability that each arm is the best, for Beta(alpha[k], beta[k]) posteriors with both
@@ -86,30 +99,41 @@ pub fn prob_best(alpha: &[f64], beta: &[f64], out: &mut [f64]) {
         return;
     }
 
-    let mut grid = vec![lower, upper];
+    let start = contenders.iter().map(|&j| reach[j].2).fold(1.0, f64::min);
+    let mut points: Vec<(f64, f64)> = vec![(start, 0.0), (upper, 0.0)];
     let steps = ((REACH_BELOW + REACH_ABOVE) / STEP) as i32;
     for &j in &contenders {
         let (mean, sd, _, _) = reach[j];
         for i in 0..=steps {
             let x = mean + sd * (-REACH_BELOW + STEP * i as f64);
-            if x > lower && x < upper {
-                grid.push(x);
+            if x > start && x < upper {
+                points.push((x, STEP * sd));
             }
         }
     }
-    grid.sort_by(f64::total_cmp);
-    grid.dedup();
+    points.sort_by(|a, b| a.0.total_cmp(&b.0));
+    let mut grid: Vec<f64> = Vec::with_capacity(points.len());
+    for (x, step) in points {
+        match grid.last() {
+            Some(&last) if x - last < 0.8 * step && x < upper => {}
+            _ => grid.push(x),
+        }
+    }
+    if grid.last() != Some(&upper) {
+        grid.push(upper);
+    }
 
     let posts: Vec<Posterior> = contenders
         .iter()
         .map(|&j| {
             let ln_norm = ln_beta(alpha[j], beta[j]);
-            Posterior { a: alpha[j], b: beta[j], ln_norm, norm: (-ln_norm).exp() }
+            Posterior { a: alpha[j], b: beta[j], ln_norm, norm: (-ln_norm).exp(), lower: reach[j].2, upper: reach[j].3 }
         })
         .collect();
     let c = posts.len();
-    let mut cdf: Vec<f64> = contenders.iter().map(|&j| beta_reg(alpha[j], beta[j], lower)).collect();
-    let mut left: Vec<(f64, f64)> = posts.iter().map(|p| p.pdf(lower)).collect();
+    let mut cdf = vec![0.0; c];
+    let (l0, l1) = logs(start);
+    let mut left: Vec<(f64, f64)> = posts.iter().map(|p| p.pdf(start, l0, l1)).collect();
     let mut right = vec![(0.0, 0.0); c];
     let mut mid_pdf = vec![0.0; c];
     let mut mid_cdf = vec![0.0; c];
@@ -122,9 +146,11 @@ pub fn prob_best(alpha: &[f64], beta: &[f64], out: &mut [f64]) {
         let (x0, x1) = (w[0], w[1]);
         let h = x1 - x0;
         let xm = 0.5 * (x0 + x1);
+        let (r0, r1) = logs(x1);
+        let (m0, m1) = logs(xm);
         for j in 0..c {
-            right[j] = posts[j].pdf(x1);
-            mid_pdf[j] = posts[j].pdf(xm).0;
+            right[j] = posts[j].pdf(x1, r0, r1);
+            mid_pdf[j] = posts[j].pdf(xm, m0, m1).0;
             let ((f0, d0), (f1, d1)) = (left[j], right[j]);
             let half = h * (13.0 / 32.0 * f0 + 3.0 / 32.0 * f1 + h * (11.0 / 192.0 * d0 - 5.0 / 192.0 * d1));
             let whole = h * (0.5 * (f0 + f1) + h / 12.0 * (d0 - d1));
