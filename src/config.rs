@@ -268,6 +268,23 @@ impl Config {
                 return Err(format!("kafka.client.\"{key}\" is set by apportion itself; use the kafka section's own keys"));
             }
         }
+        let mut probe = rdkafka::ClientConfig::new();
+        for (key, v) in &k.client {
+            probe.set(key, v);
+        }
+        if let Err(e) = probe.create_native_config() {
+            return Err(match e {
+                rdkafka::error::KafkaError::ClientConfig(_, desc, key, value) => {
+                    let (shown, desc) = if is_secret(&key) && !value.is_empty() {
+                        ("<redacted>".to_string(), desc.replace(&value, "<redacted>"))
+                    } else {
+                        (format!("{value:?}"), desc)
+                    };
+                    format!("kafka.client.\"{key}\" = {shown}: {desc}")
+                }
+                other => format!("kafka.client: {other}"),
+            });
+        }
         let positive = |key: &str, v: f64| {
             if v.is_finite() && v > 0.0 {
                 Ok(())
@@ -403,7 +420,7 @@ impl Config {
 /// Whether a librdkafka property holds a secret (passwords, keys, tokens, credentials).
 pub fn is_secret(key: &str) -> bool {
     let k = key.to_ascii_lowercase();
-    ["password", "secret", "token", "credential", ".key.pem", "key.pem", "jaas", "sasl.oauthbearer.config"]
+    ["password", "passphrase", "secret", "token", "credential", ".key.pem", "key.pem", "jaas", "sasl.oauthbearer.config"]
         .iter()
         .any(|s| k.contains(s))
 }

@@ -174,7 +174,10 @@ fn hand_overs_between_two_instances_keep_totals_exact_and_one_owner_per_experime
         last = sum_totals(&parts);
         want.iter().all(|(k, w)| last.get(k) == Some(w))
     });
-    assert!(done, "not caught up: {last:?}");
+    if !done {
+        let diff: Vec<_> = want.iter().filter(|(k, w)| last.get(*k) != Some(w)).map(|(k, w)| (k, w, last.get(k))).collect();
+        panic!("not caught up: {} arms differ, e.g. {:?}", diff.len(), &diff[..diff.len().min(6)]);
+    }
     assert_totals(&last, &want);
     assert!(a.stop() && b.stop());
     assert_versions_increase(&cfg.topic("weights"), 12);

@@ -2,6 +2,11 @@
 
 use serde::{Deserialize, Serialize};
 
+/// Largest maximum of a bounded reward: sums of squared rewards stay finite (1e100² = 1e200,
+/// far below f64::MAX ≈ 1.8e308, for any number of events), and a snapshot, which is JSON
+/// and has no infinity, always reads back.
+pub const MAX_REWARD: f64 = 1e100;
+
 /// The reward model of an experiment.
 ///
 /// Index policies (UCB1, KL-UCB) and the Beta posterior of Thompson sampling need rewards in
@@ -50,9 +55,9 @@ impl RewardModel {
     pub fn validate(&self) -> Result<(), String> {
         match self {
             RewardModel::Bernoulli => Ok(()),
-            RewardModel::Bounded { max } if max.is_finite() && *max > 0.0 => Ok(()),
+            RewardModel::Bounded { max } if *max > 0.0 && *max <= MAX_REWARD => Ok(()),
             RewardModel::Bounded { max } => {
-                Err(format!("bounded reward max is {max}; it must be a finite number > 0"))
+                Err(format!("bounded reward max is {max}; it must be a number in (0, {MAX_REWARD:e}]"))
             }
         }
     }

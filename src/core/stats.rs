@@ -47,14 +47,14 @@ impl ArmStats {
             return 1.0;
         }
         if ts_ms > self.as_of_ms {
-            let f = decay_factor((ts_ms - self.as_of_ms) as f64, h);
+            let f = decay_factor(ts_ms.saturating_sub(self.as_of_ms) as f64, h);
             self.pulls *= f;
             self.reward *= f;
             self.reward_sq *= f;
             self.as_of_ms = ts_ms;
             1.0
         } else {
-            decay_factor((self.as_of_ms - ts_ms) as f64, h)
+            decay_factor(self.as_of_ms.saturating_sub(ts_ms) as f64, h)
         }
     }
 
@@ -62,7 +62,7 @@ impl ArmStats {
     pub fn add_pulls(&mut self, count: u64, ts_ms: i64, half_life_ms: HalfLife) {
         let w = self.weight_for(ts_ms, half_life_ms);
         self.pulls += w * count as f64;
-        self.pulls_total += count;
+        self.pulls_total = self.pulls_total.saturating_add(count);
         self.last_pull_ms = Some(self.last_pull_ms.map_or(ts_ms, |t| t.max(ts_ms)));
     }
 
@@ -86,7 +86,7 @@ impl ArmStats {
     pub fn at(&self, now_ms: i64, half_life_ms: HalfLife) -> (f64, f64, f64) {
         match half_life_ms {
             Some(h) if now_ms > self.as_of_ms => {
-                let f = decay_factor((now_ms - self.as_of_ms) as f64, h);
+                let f = decay_factor(now_ms.saturating_sub(self.as_of_ms) as f64, h);
                 (self.pulls * f, self.reward * f, self.reward_sq * f)
             }
             _ => (self.pulls, self.reward, self.reward_sq),

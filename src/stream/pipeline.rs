@@ -223,7 +223,7 @@ impl Pipeline {
         match obs {
             Observation::Impression { count } => {
                 h.pulls.inc_by(count);
-                entry.impressions_since += count;
+                entry.impressions_since = entry.impressions_since.saturating_add(count);
                 if let Some(t) = entry.exp.arm_stats()[arm].last_pull_ms {
                     h.last_pull.set(t as f64 / 1000.0);
                 }
@@ -516,20 +516,25 @@ impl Pipeline {
             self.state_reader.assign(&tpl).map_err(|e| e.to_string())?;
             let deadline = Instant::now() + Duration::from_secs(60);
             let mut next = start;
-            while next < end && Instant::now() < deadline {
+            // The newest window is read to the partition's end as the fetch reports it: some
+            // brokers (tansu 0.6) report a high watermark short of the last batch's messages.
+            let newest = end == high;
+            let mut at_end = false;
+            while (if newest { !at_end } else { next < end }) && Instant::now() < deadline {
                 match self.state_reader.poll(Duration::from_millis(200)) {
                     Some(Ok(m)) => {
                         next = m.offset() + 1;
-                        if m.offset() < end && m.key() == Some(key.as_bytes()) {
+                        if (newest || m.offset() < end) && m.key() == Some(key.as_bytes()) {
                             found.push(m.payload().unwrap_or_default().to_vec());
                         }
                     }
+                    Some(Err(rdkafka::error::KafkaError::PartitionEOF(_))) => at_end = true,
                     Some(Err(e)) => tracing::warn!("reading {topic}/{sp}: {e}"),
                     None => {}
                 }
             }
-            if next < end {
-                return Err(format!("timed out reading {topic}/{sp} from offset {start} to {end}"));
+            if if newest { !at_end } else { next < end } {
+                return Err(format!("timed out reading {topic}/{sp} from offset {start}"));
             }
             for bytes in found.iter().rev() {
                 match Snapshot::decode(bytes) {
