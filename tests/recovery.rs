@@ -15,6 +15,14 @@ use rdkafka::producer::{BaseProducer, BaseRecord, Producer};
 
 type Totals = BTreeMap<(String, String), (u64, f64)>;
 
+/// The fault tests run one at a time: each drives several processes on a 2-core machine, and
+/// starving a consumer past its session timeout would test the machine, not the sidecar.
+static ONE_AT_A_TIME: std::sync::Mutex<()> = std::sync::Mutex::new(());
+
+fn exclusive() -> std::sync::MutexGuard<'static, ()> {
+    ONE_AT_A_TIME.lock().unwrap_or_else(|poisoned| poisoned.into_inner())
+}
+
 /// A seeded stream over `experiments` experiments of four arms, with about 2 % of events sent
 /// twice. Returns the messages and what must be applied (duplicates once).
 fn workload(events: usize, experiments: usize, seed: u64) -> (Vec<(String, Vec<u8>)>, Totals) {
@@ -110,6 +118,7 @@ fn sum_totals(parts: &[String]) -> Totals {
 
 #[test]
 fn crashes_at_random_moments_lose_nothing_and_count_nothing_twice() {
+    let _one = exclusive();
     let brokers = brokers();
     let cfg = ProcConfig::new("crash", &brokers, 4);
     let (messages, want) = workload(200_000, 8, 42);
@@ -150,6 +159,7 @@ fn crashes_at_random_moments_lose_nothing_and_count_nothing_twice() {
 
 #[test]
 fn hand_overs_between_two_instances_keep_totals_exact_and_one_owner_per_experiment() {
+    let _one = exclusive();
     let brokers = brokers();
     let cfg = ProcConfig::new("handover", &brokers, 6);
     let (messages, want) = workload(60_000, 12, 43);
@@ -185,6 +195,7 @@ fn hand_overs_between_two_instances_keep_totals_exact_and_one_owner_per_experime
 
 #[test]
 fn a_broker_paused_mid_stream_loses_nothing() {
+    let _one = exclusive();
     let port = free_port();
     let mut broker = std::process::Command::new("tansu")
         .args(["broker", "--listener-url"])
