@@ -50,7 +50,7 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
     let state_reader: BaseConsumer = client_config(&cfg)
         .set("group.id", format!("{}.state-reader", cfg.kafka.group_id))
         .set("enable.auto.commit", "false")
-        .set("enable.partition.eof", "true")
+        .set("enable.partition.eof", "false")
         .create()
         .context("cannot create the state reader")?;
     let state_partitions = partition_count(&state_reader, &cfg.kafka.state_topic)?;

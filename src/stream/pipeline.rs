@@ -516,25 +516,28 @@ impl Pipeline {
             self.state_reader.assign(&tpl).map_err(|e| e.to_string())?;
             let deadline = Instant::now() + Duration::from_secs(60);
             let mut next = start;
-            // The newest window is read to the partition's end as the fetch reports it: some
-            // brokers (tansu 0.6) report a high watermark short of the last batch's messages.
+            // Some brokers (tansu 0.6) report a high watermark short of the last batch's
+            // messages, so the newest window reads on past it until the partition stays quiet.
             let newest = end == high;
-            let mut at_end = false;
-            while (if newest { !at_end } else { next < end }) && Instant::now() < deadline {
-                match self.state_reader.poll(Duration::from_millis(200)) {
+            let mut quiet_since = Instant::now();
+            loop {
+                if Instant::now() >= deadline {
+                    return Err(format!("timed out reading {topic}/{sp} from offset {start} to {end}"));
+                }
+                if next >= end && (!newest || quiet_since.elapsed() >= Duration::from_millis(300)) {
+                    break;
+                }
+                match self.state_reader.poll(Duration::from_millis(100)) {
                     Some(Ok(m)) => {
                         next = m.offset() + 1;
+                        quiet_since = Instant::now();
                         if (newest || m.offset() < end) && m.key() == Some(key.as_bytes()) {
                             found.push(m.payload().unwrap_or_default().to_vec());
                         }
                     }
-                    Some(Err(rdkafka::error::KafkaError::PartitionEOF(_))) => at_end = true,
                     Some(Err(e)) => tracing::warn!("reading {topic}/{sp}: {e}"),
                     None => {}
                 }
-            }
-            if if newest { !at_end } else { next < end } {
-                return Err(format!("timed out reading {topic}/{sp} from offset {start}"));
             }
             for bytes in found.iter().rev() {
                 match Snapshot::decode(bytes) {

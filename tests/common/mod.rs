@@ -192,8 +192,7 @@ pub struct ProcConfig {
     pub partitions: i32,
     pub port: u16,
     /// Consumer session timeout. Short by default so that a killed instance's partitions move
-    /// on quickly. When a session does expire, tansu 0.6 keeps the group rebalancing until the
-    /// old member's rebalance timeout (max.poll.interval.ms), so that is kept short too.
+    /// on quickly; longer than any broker pause a test makes, so the pause does not expire it.
     pub session_timeout_ms: u32,
     pub extra: String,
 }
@@ -205,7 +204,7 @@ impl ProcConfig {
             brokers: brokers.to_string(),
             partitions,
             port: free_port(),
-            session_timeout_ms: 10_000,
+            session_timeout_ms: 6000,
             extra: String::new(),
         }
     }
@@ -229,7 +228,6 @@ topic_partitions = {partitions}
 [kafka.client]
 "session.timeout.ms" = "{session}"
 "heartbeat.interval.ms" = "{heartbeat}"
-"max.poll.interval.ms" = "{poll}"
 
 [publish]
 interval_seconds = 0.2
@@ -250,7 +248,6 @@ level = "warn"
             partitions = self.partitions,
             session = self.session_timeout_ms,
             heartbeat = (self.session_timeout_ms / 6).max(500),
-            poll = self.session_timeout_ms.max(20_000),
             extra = self.extra,
         );
         let path = std::env::temp_dir().join(format!("{}-{port}.toml", self.id));
