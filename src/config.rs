@@ -91,11 +91,13 @@ impl Default for PublishConfig {
 #[serde(default, deny_unknown_fields)]
 pub struct SnapshotConfig {
     pub interval_seconds: f64,
+    /// Largest state-topic message; larger snapshots are written in parts of this size.
+    pub part_bytes: usize,
 }
 
 impl Default for SnapshotConfig {
     fn default() -> Self {
-        SnapshotConfig { interval_seconds: 10.0 }
+        SnapshotConfig { interval_seconds: 10.0, part_bytes: 512 * 1024 }
     }
 }
 
@@ -295,6 +297,12 @@ impl Config {
         positive("publish.interval_seconds", self.publish.interval_seconds)?;
         positive("publish.heartbeat_seconds", self.publish.heartbeat_seconds)?;
         positive("snapshot.interval_seconds", self.snapshot.interval_seconds)?;
+        if !(4096..=64 * 1024 * 1024).contains(&self.snapshot.part_bytes) {
+            return Err(format!(
+                "snapshot.part_bytes = {}; it must be between 4096 and 67108864, and below the broker's message.max.bytes",
+                self.snapshot.part_bytes
+            ));
+        }
         positive("limits.max_clock_skew_seconds", self.limits.max_clock_skew_seconds)?;
         if !(0.0..=1.0).contains(&self.publish.min_change) {
             return Err(format!("publish.min_change = {}; it must be in [0, 1]", self.publish.min_change));

@@ -83,7 +83,7 @@ pub fn report<'a>(
         .collect();
     let mut leader: Option<usize> = None;
     for (j, a) in arms.iter().enumerate() {
-        if a.pulls > 0 && leader.map_or(true, |l| a.mean > arms[l].mean) {
+        if a.pulls > 0 && leader.is_none_or(|l| a.mean > arms[l].mean) {
             leader = Some(j);
         }
     }

@@ -12,19 +12,14 @@ pub const MAX_REWARD: f64 = 1e100;
 /// Index policies (UCB1, KL-UCB) and the Beta posterior of Thompson sampling need rewards in
 /// [0, 1]; a bounded model divides every reward by its maximum before a policy sees it, so one
 /// set of formulas serves both models.
-#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Copy, Debug, Default, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "kind", rename_all = "kebab-case", deny_unknown_fields)]
 pub enum RewardModel {
     /// Each reward is a success (1) or a failure (0), e.g. a click after an impression.
+    #[default]
     Bernoulli,
     /// Rewards are amounts in `[0, max]`, e.g. watch seconds capped at a known maximum.
     Bounded { max: f64 },
-}
-
-impl Default for RewardModel {
-    fn default() -> Self {
-        RewardModel::Bernoulli
-    }
 }
 
 impl RewardModel {

@@ -15,7 +15,7 @@ use rustc_hash::FxHashMap;
 
 use super::dedup::DedupWindow;
 use super::publish::WeightsMessage;
-use super::snapshot::{self, Counters, Snapshot};
+use super::snapshot::{self, Counters, Pointer, Snapshot, Stored};
 use crate::config::{Config, ResolvedExperiment};
 use crate::core::{Experiment, ExperimentSpec, Observation, Refusal};
 use crate::event::{self, Kind, Reason};
@@ -42,6 +42,9 @@ impl ProducerContext for DeliveryWatch {
 
 pub type Sink = ThreadedProducer<DeliveryWatch>;
 
+/// Called with each state-topic message read: offset, key, value.
+type StateVisitor<'a> = dyn FnMut(i64, Option<&[u8]>, &[u8]) + 'a;
+
 /// Settings the pipeline needs, resolved from configuration once.
 pub struct Settings {
     pub input_topic: String,
@@ -58,6 +61,7 @@ pub struct Settings {
     pub heartbeat: Duration,
     pub min_change: f64,
     pub snapshot_interval: Duration,
+    pub snapshot_part_bytes: usize,
 }
 
 impl Settings {
@@ -78,6 +82,7 @@ impl Settings {
             heartbeat: Duration::from_secs_f64(cfg.publish.heartbeat_seconds),
             min_change: cfg.publish.min_change,
             snapshot_interval: Duration::from_secs_f64(cfg.snapshot.interval_seconds),
+            snapshot_part_bytes: cfg.snapshot.part_bytes,
         })
     }
 }
@@ -97,6 +102,21 @@ struct PartitionState {
     experiments: FxHashMap<String, Entry>,
     dedup: DedupWindow,
     counters: Counters,
+    /// Generation of the last snapshot written (or loaded) of this partition.
+    generation: u64,
+    /// The part slot (0 or 1) of the newest complete snapshot written in parts; the next one
+    /// goes to the other slot.
+    complete_slot: u64,
+    /// Set after taking the partition over at a snapshot's offset, until the first message
+    /// shows that reading really started there (see [`Pipeline::on_message`]).
+    resume_check: Option<ResumeCheck>,
+}
+
+/// Reading resumed at `target`; the consumer was last asked to read from `asked` (≤ target).
+#[derive(Clone, Copy, Debug)]
+struct ResumeCheck {
+    target: i64,
+    asked: i64,
 }
 
 pub struct Pipeline {
@@ -149,16 +169,40 @@ impl Pipeline {
         *part.counters.events.entry(format!("{kind}/{outcome}")).or_default() += 1;
     }
 
-    /// Applies one message of input partition `partition` at `offset`.
-    pub fn on_message(&mut self, partition: i32, offset: i64, key: Option<&[u8]>, payload: Option<&[u8]>, now_ms: i64) {
-        let Some(mut part) = self.partitions.remove(&partition) else {
-            return;
-        };
-        if offset >= part.next_offset {
+    /// Applies one message of input partition `partition` at `offset`. Returns an offset to
+    /// read the partition from again when the broker skipped past the resume offset.
+    ///
+    /// Some brokers (tansu 0.6, seen here) answer a fetch from an offset inside a record batch
+    /// with the *next* batch, silently skipping the rest of the one asked for. A snapshot's
+    /// offset usually falls inside a batch, so after taking a partition over the first message
+    /// is checked: if it lies beyond the resume offset, the partition is read again from
+    /// further back (messages before the resume offset are passed over) until a message at or
+    /// before it arrives, or reading from offset 0 shows the gap is real (compaction, markers).
+    pub fn on_message(&mut self, partition: i32, offset: i64, key: Option<&[u8]>, payload: Option<&[u8]>, now_ms: i64) -> Option<i64> {
+        let mut part = self.partitions.remove(&partition)?;
+        let mut seek = None;
+        if let Some(check) = part.resume_check {
+            if offset <= check.target || check.asked == 0 {
+                part.resume_check = None;
+            } else {
+                let back = (4 * (check.target - check.asked)).max(1024);
+                let asked = (check.target - back).max(0);
+                tracing::info!(
+                    partition,
+                    resume = check.target,
+                    first = offset,
+                    "the broker skipped past the resume offset; reading again from offset {asked}"
+                );
+                part.resume_check = Some(ResumeCheck { target: check.target, asked });
+                seek = Some(asked);
+            }
+        }
+        if seek.is_none() && offset >= part.next_offset {
             self.apply(&mut part, partition, offset, key, payload.unwrap_or_default(), now_ms);
             part.next_offset = offset + 1;
         }
         self.partitions.insert(partition, part);
+        seek
     }
 
     fn apply(&mut self, part: &mut PartitionState, partition: i32, offset: i64, key: Option<&[u8]>, bytes: &[u8], now_ms: i64) {
@@ -326,17 +370,23 @@ impl Pipeline {
 
     /// Writes the snapshots of `partitions` and waits until they have landed. Returns the
     /// offsets that may be committed to the group (for lag reporting only).
+    ///
+    /// A snapshot larger than `snapshot_part_bytes` is written in parts; its pointer follows
+    /// only once every part has landed, so a reader never finds a pointer to missing parts.
     pub fn snapshot(&mut self, partitions: &[i32]) -> Vec<(i32, i64)> {
         let written_at_ms = now_ms();
         let failed_before = self.sink.context().failed.load(Ordering::SeqCst);
         let mut done = Vec::new();
+        let mut pointers: Vec<Pointer> = Vec::new();
         for &p in partitions {
-            let Some(part) = self.partitions.get(&p) else { continue };
+            let Some(part) = self.partitions.get_mut(&p) else { continue };
+            part.generation += 1;
             let snap = Snapshot {
                 format: snapshot::FORMAT,
                 topic: self.s.input_topic.clone(),
                 partition: p,
                 next_offset: part.next_offset,
+                generation: part.generation,
                 written_at_ms,
                 experiments: part.experiments.iter().map(|(k, e)| (k.clone(), e.exp.state())).collect(),
                 duplicates: part.dedup.ids(),
@@ -349,21 +399,56 @@ impl Pipeline {
                     continue;
                 }
             };
-            let key = snapshot::key(&self.s.input_topic, p);
-            let record = BaseRecord::to(&self.s.state_topic)
-                .key(key.as_bytes())
-                .payload(&bytes[..])
-                .partition(p % self.state_partitions);
-            send_with_retry(&self.sink, record);
+            let sp = p % self.state_partitions;
+            if bytes.len() <= self.s.snapshot_part_bytes {
+                let key = snapshot::key(&self.s.input_topic, p);
+                send_with_retry(&self.sink, BaseRecord::to(&self.s.state_topic).key(key.as_bytes()).payload(&bytes[..]).partition(sp));
+            } else {
+                let slot = 1 - part.complete_slot;
+                let chunks: Vec<&[u8]> = bytes.chunks(self.s.snapshot_part_bytes).collect();
+                for (i, chunk) in chunks.iter().enumerate() {
+                    let key = snapshot::part_key(&self.s.input_topic, p, slot, i as u32);
+                    let value = snapshot::encode_part(part.generation, i as u32, chunk);
+                    send_with_retry(&self.sink, BaseRecord::to(&self.s.state_topic).key(key.as_bytes()).payload(&value[..]).partition(sp));
+                }
+                pointers.push(Pointer {
+                    format: snapshot::FORMAT,
+                    topic: self.s.input_topic.clone(),
+                    partition: p,
+                    generation: part.generation,
+                    slot,
+                    parts: chunks.len() as u32,
+                    bytes: bytes.len() as u64,
+                    checksum: snapshot::fnv1a(&bytes),
+                });
+            }
             done.push((p, part.next_offset));
         }
-        if let Err(e) = self.sink.flush(Duration::from_secs(30)) {
-            tracing::error!("snapshots not confirmed by the broker: {e}");
+        if !pointers.is_empty() {
+            if !self.landed(failed_before) {
+                return Vec::new();
+            }
+            for ptr in &pointers {
+                let key = snapshot::key(&self.s.input_topic, ptr.partition);
+                match serde_json::to_vec(ptr) {
+                    Ok(value) => send_with_retry(
+                        &self.sink,
+                        BaseRecord::to(&self.s.state_topic)
+                            .key(key.as_bytes())
+                            .payload(&value[..])
+                            .partition(ptr.partition % self.state_partitions),
+                    ),
+                    Err(e) => tracing::error!(partition = ptr.partition, "cannot encode a snapshot pointer: {e}"),
+                }
+            }
+        }
+        if !self.landed(failed_before) {
             return Vec::new();
         }
-        if self.sink.context().failed.load(Ordering::SeqCst) != failed_before {
-            tracing::error!("a snapshot was not delivered; offsets are not committed");
-            return Vec::new();
+        for ptr in &pointers {
+            if let Some(part) = self.partitions.get_mut(&ptr.partition) {
+                part.complete_slot = ptr.slot;
+            }
         }
         let secs = written_at_ms as f64 / 1000.0;
         for &(p, _) in &done {
@@ -371,6 +456,19 @@ impl Pipeline {
         }
         self.last_snapshot = Instant::now();
         done
+    }
+
+    /// Waits until everything sent has been acknowledged; false if something was not.
+    fn landed(&self, failed_before: u64) -> bool {
+        if let Err(e) = self.sink.flush(Duration::from_secs(30)) {
+            tracing::error!("snapshots not confirmed by the broker: {e}");
+            return false;
+        }
+        if self.sink.context().failed.load(Ordering::SeqCst) != failed_before {
+            tracing::error!("a snapshot was not delivered; offsets are not committed");
+            return false;
+        }
+        true
     }
 
     pub fn snapshot_due(&mut self) -> Vec<(i32, i64)> {
@@ -389,16 +487,28 @@ impl Pipeline {
     pub fn assign(&mut self, partitions: &[i32]) -> Vec<(i32, Offset)> {
         let mut out = Vec::new();
         for &p in partitions {
-            let snap = match self.load_snapshot(p) {
-                Ok(s) => s,
+            let started = Instant::now();
+            let (snap, slot) = match self.load_snapshot(p) {
+                Ok(Some((s, slot))) => (Some(s), slot),
+                Ok(None) => (None, 1),
                 Err(e) => {
                     tracing::error!(partition = p, "cannot read the state topic: {e}; the partition is not taken");
                     continue;
                 }
             };
-            let part = self.restore(p, snap);
+            let mut part = self.restore(p, snap);
+            part.complete_slot = slot;
+            if part.next_offset > 0 {
+                part.resume_check = Some(ResumeCheck { target: part.next_offset, asked: part.next_offset });
+            }
             out.push((p, if part.next_offset > 0 { Offset::Offset(part.next_offset) } else { Offset::Beginning }));
-            tracing::info!(partition = p, next_offset = part.next_offset, experiments = part.experiments.len(), "partition assigned");
+            tracing::info!(
+                partition = p,
+                next_offset = part.next_offset,
+                experiments = part.experiments.len(),
+                restore_ms = started.elapsed().as_millis() as u64,
+                "partition assigned"
+            );
             let ids: Vec<String> = part.experiments.keys().cloned().collect();
             self.partitions.insert(p, part);
             for id in ids {
@@ -418,6 +528,9 @@ impl Pipeline {
                 experiments: FxHashMap::default(),
                 dedup: DedupWindow::new(self.s.duplicate_window),
                 counters: Counters::default(),
+                generation: 0,
+                complete_slot: 1,
+                resume_check: None,
             };
         };
         // Publishes after the snapshot may have been lost with a crash; versions go up by at
@@ -472,6 +585,9 @@ impl Pipeline {
             experiments,
             dedup: DedupWindow::restore(self.s.duplicate_window, &snap.duplicates),
             counters: snap.counters,
+            generation: snap.generation,
+            complete_slot: 1,
+            resume_check: None,
         }
     }
 
@@ -496,9 +612,13 @@ impl Pipeline {
         offsets
     }
 
-    /// The newest readable snapshot of input partition `p`, scanning the state topic backwards
-    /// from its end in growing steps, so that restoring does not read the whole history.
-    fn load_snapshot(&self, p: i32) -> Result<Option<Snapshot>, String> {
+    /// The newest readable snapshot of input partition `p` and, if it was written in parts,
+    /// their slot. Reads the state topic's tail in growing steps (64, 256, 1024, … messages
+    /// back from the end), so that restoring does not read the whole history. Each step reads
+    /// through to the end: a broker may answer a read from inside a record batch with a later
+    /// batch (see `on_message`), and reading on to the end keeps such a skip from hiding
+    /// anything; the steps grow fourfold, so this reads at most 4/3 of the last step.
+    fn load_snapshot(&self, p: i32) -> Result<Option<(Snapshot, u64)>, String> {
         let topic = &self.s.state_topic;
         let sp = p % self.state_partitions;
         let key = snapshot::key(&self.s.input_topic, p);
@@ -506,54 +626,107 @@ impl Pipeline {
             .state_reader
             .fetch_watermarks(topic, sp, Duration::from_secs(10))
             .map_err(|e| format!("watermarks of {topic}/{sp}: {e}"))?;
-        let mut end = high;
+        let mut start = high;
         let mut step = 64i64;
-        while end > low {
-            let start = (end - step).max(low);
-            let mut found: Vec<Vec<u8>> = Vec::new();
-            let mut tpl = TopicPartitionList::new();
-            tpl.add_partition_offset(topic, sp, Offset::Offset(start)).map_err(|e| e.to_string())?;
-            self.state_reader.assign(&tpl).map_err(|e| e.to_string())?;
-            let deadline = Instant::now() + Duration::from_secs(60);
-            let mut next = start;
-            // Some brokers (tansu 0.6) report a high watermark short of the last batch's
-            // messages, so the newest window reads on past it until the partition stays quiet.
-            let newest = end == high;
-            let mut quiet_since = Instant::now();
-            loop {
-                if Instant::now() >= deadline {
-                    return Err(format!("timed out reading {topic}/{sp} from offset {start} to {end}"));
-                }
-                if next >= end && (!newest || quiet_since.elapsed() >= Duration::from_millis(300)) {
-                    break;
-                }
-                match self.state_reader.poll(Duration::from_millis(100)) {
-                    Some(Ok(m)) => {
-                        next = m.offset() + 1;
-                        quiet_since = Instant::now();
-                        if (newest || m.offset() < end) && m.key() == Some(key.as_bytes()) {
-                            found.push(m.payload().unwrap_or_default().to_vec());
-                        }
-                    }
-                    Some(Err(e)) => tracing::warn!("reading {topic}/{sp}: {e}"),
-                    None => {}
-                }
+        // Offsets of the candidates already tried in an earlier step.
+        let mut tried = std::collections::BTreeSet::new();
+        let result = loop {
+            if start <= low {
+                break Ok(None);
             }
-            for bytes in found.iter().rev() {
-                match Snapshot::decode(bytes) {
-                    Ok(s) if s.partition == p && s.topic == self.s.input_topic => {
-                        let _ = self.state_reader.unassign();
-                        return Ok(Some(s));
+            start = (start - step).max(low);
+            let mut found: Vec<(i64, Vec<u8>)> = Vec::new();
+            // Some brokers (tansu 0.6) report a high watermark short of the last batch's
+            // messages, so reading goes on past it until the partition is quiet.
+            self.read_range(sp, start, high, true, &mut |offset, k, v| {
+                if k == Some(key.as_bytes()) && !tried.contains(&offset) {
+                    found.push((offset, v.to_vec()));
+                }
+            })?;
+            found.sort_by_key(|(offset, _)| std::cmp::Reverse(*offset));
+            tried.extend(found.iter().map(|(offset, _)| *offset));
+            let mut chosen = None;
+            for (offset, bytes) in &found {
+                match Stored::decode(bytes) {
+                    Ok(Stored::Whole(s)) if s.partition == p && s.topic == self.s.input_topic => {
+                        chosen = Some((*s, 1));
+                        break;
+                    }
+                    Ok(Stored::Parts(ptr)) if ptr.partition == p && ptr.topic == self.s.input_topic => {
+                        match self.gather_parts(sp, low, *offset, &ptr) {
+                            Ok(s) => {
+                                chosen = Some((s, ptr.slot));
+                                break;
+                            }
+                            Err(e) => tracing::error!(partition = p, generation = ptr.generation, "skipping a snapshot whose parts cannot be read: {e}"),
+                        }
                     }
                     Ok(_) => {}
                     Err(e) => tracing::error!(partition = p, "skipping an unreadable snapshot: {e}"),
                 }
             }
-            end = start;
+            if chosen.is_some() {
+                break Ok(chosen);
+            }
+            step = step.saturating_mul(4);
+        };
+        let _ = self.state_reader.unassign();
+        result
+    }
+
+    /// Collects the parts `ptr` names, reading backwards from the pointer's offset `before`.
+    fn gather_parts(&self, sp: i32, low: i64, before: i64, ptr: &Pointer) -> Result<Snapshot, String> {
+        let prefix = format!("{}/{}/part/{}/", self.s.input_topic, ptr.partition, ptr.slot);
+        // index → (offset, bytes) of the newest copy before the pointer.
+        let mut parts: BTreeMap<u32, (i64, Vec<u8>)> = BTreeMap::new();
+        let mut start = before;
+        let mut step = 2 * i64::from(ptr.parts) + 64;
+        while start > low && parts.len() < ptr.parts as usize {
+            start = (start - step).max(low);
+            self.read_range(sp, start, before, false, &mut |offset, k, v| {
+                if offset >= before || !k.is_some_and(|k| k.starts_with(prefix.as_bytes())) {
+                    return;
+                }
+                if let Some((generation, index, chunk)) = snapshot::decode_part(v) {
+                    if generation == ptr.generation && index < ptr.parts && parts.get(&index).is_none_or(|(o, _)| *o < offset) {
+                        parts.insert(index, (offset, chunk.to_vec()));
+                    }
+                }
+            })?;
             step = step.saturating_mul(4);
         }
-        let _ = self.state_reader.unassign();
-        Ok(None)
+        let parts: BTreeMap<u32, Vec<u8>> = parts.into_iter().map(|(i, (_, bytes))| (i, bytes)).collect();
+        snapshot::join_parts(ptr, &parts)
+    }
+
+    /// Reads state partition `sp` from `start` until `end`, handing every message's offset, key
+    /// and value to `f`. With `past_end`, reads on past `end` until the partition has been
+    /// quiet for 300 ms (for brokers that report the end short).
+    fn read_range(&self, sp: i32, start: i64, end: i64, past_end: bool, f: &mut StateVisitor<'_>) -> Result<(), String> {
+        let topic = &self.s.state_topic;
+        let mut tpl = TopicPartitionList::new();
+        tpl.add_partition_offset(topic, sp, Offset::Offset(start)).map_err(|e| e.to_string())?;
+        self.state_reader.assign(&tpl).map_err(|e| e.to_string())?;
+        let deadline = Instant::now() + Duration::from_secs(60);
+        let mut next = start;
+        let mut quiet_since = Instant::now();
+        loop {
+            if Instant::now() >= deadline {
+                return Err(format!("timed out reading {topic}/{sp} from offset {start} to {end}"));
+            }
+            if next >= end && (!past_end || quiet_since.elapsed() >= Duration::from_millis(300)) {
+                return Ok(());
+            }
+            match self.state_reader.poll(Duration::from_millis(100)) {
+                Some(Ok(m)) => {
+                    next = m.offset() + 1;
+                    quiet_since = Instant::now();
+                    f(m.offset(), m.key(), m.payload().unwrap_or_default());
+                }
+                Some(Err(e)) => tracing::warn!("reading {topic}/{sp}: {e}"),
+                None => {}
+            }
+        }
     }
 }
 

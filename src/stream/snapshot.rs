@@ -4,6 +4,13 @@
 //! experiment's statistics and weights version, the duplicate window and the counter values
 //! to restore, so that an instance taking the partition over resumes exactly where the
 //! snapshot was taken.
+//!
+//! A snapshot larger than `snapshot.part_bytes` (thousands of experiments on one partition)
+//! does not fit in one Kafka message. Its JSON is then cut into parts, written under the keys
+//! `<input topic>/<partition>/part/<slot>/<index>`, and only after every part has landed a small
+//! [`Pointer`] goes under the partition's own key. Consecutive large snapshots alternate between
+//! two slots, so compaction never removes the parts of the newest complete snapshot while the
+//! next one is being written: a crash half-way through leaves the previous snapshot whole.
 
 use std::collections::BTreeMap;
 
@@ -31,6 +38,9 @@ pub struct Snapshot {
     pub partition: i32,
     /// The first offset not yet applied.
     pub next_offset: i64,
+    /// Counts the snapshots written of this partition (older writers left it out: 0).
+    #[serde(default)]
+    pub generation: u64,
     /// Wall-clock time of writing, ms; bounds how many weights versions a crash may have lost.
     pub written_at_ms: i64,
     pub experiments: BTreeMap<String, ExperimentState>,
@@ -41,6 +51,98 @@ pub struct Snapshot {
 
 pub fn key(topic: &str, partition: i32) -> String {
     format!("{topic}/{partition}")
+}
+
+/// Key of part `index` of a large snapshot written in `slot` (0 or 1).
+pub fn part_key(topic: &str, partition: i32, slot: u64, index: u32) -> String {
+    format!("{topic}/{partition}/part/{slot}/{index}")
+}
+
+/// Stands under the partition's key in place of a snapshot too large for one message: says
+/// which parts make it up and how to check them once joined.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Pointer {
+    pub format: u32,
+    pub topic: String,
+    pub partition: i32,
+    /// The snapshot's generation; the parts carry it too, so that parts left over from an
+    /// older snapshot in the same slot are never mixed in.
+    pub generation: u64,
+    /// 0 or 1: consecutive large snapshots alternate between two sets of part keys.
+    pub slot: u64,
+    pub parts: u32,
+    pub bytes: u64,
+    /// FNV-1a (64 bit) of the joined parts.
+    pub checksum: u64,
+}
+
+/// What the partition's key holds: the snapshot itself, or a pointer to its parts.
+#[derive(Debug)]
+pub enum Stored {
+    Whole(Box<Snapshot>),
+    Parts(Pointer),
+}
+
+impl Stored {
+    /// Decodes arbitrary bytes without panicking.
+    pub fn decode(bytes: &[u8]) -> Result<Stored, String> {
+        if bytes.len() <= 4096 {
+            if let Ok(p) = serde_json::from_slice::<Pointer>(bytes) {
+                if p.format != FORMAT {
+                    return Err(format!("snapshot format {} is not {FORMAT}; written by another version", p.format));
+                }
+                return Ok(Stored::Parts(p));
+            }
+        }
+        Snapshot::decode(bytes).map(|s| Stored::Whole(Box::new(s)))
+    }
+}
+
+/// A part's value: generation (8 bytes, little-endian), index (4 bytes, little-endian), then
+/// its share of the snapshot's JSON.
+pub fn encode_part(generation: u64, index: u32, chunk: &[u8]) -> Vec<u8> {
+    let mut v = Vec::with_capacity(12 + chunk.len());
+    v.extend_from_slice(&generation.to_le_bytes());
+    v.extend_from_slice(&index.to_le_bytes());
+    v.extend_from_slice(chunk);
+    v
+}
+
+/// Splits a part's value into generation, index and bytes; `None` if it is too short.
+pub fn decode_part(value: &[u8]) -> Option<(u64, u32, &[u8])> {
+    let generation = u64::from_le_bytes(value.get(..8)?.try_into().ok()?);
+    let index = u32::from_le_bytes(value.get(8..12)?.try_into().ok()?);
+    Some((generation, index, &value[12..]))
+}
+
+/// FNV-1a, 64 bit (Fowler, Noll and Vo; offset basis and prime as published for 64 bits).
+pub fn fnv1a(bytes: &[u8]) -> u64 {
+    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
+    for &b in bytes {
+        h ^= u64::from(b);
+        h = h.wrapping_mul(0x0000_0100_0000_01b3);
+    }
+    h
+}
+
+/// Joins parts (indexed 0..n) and checks them against the pointer.
+pub fn join_parts(ptr: &Pointer, parts: &BTreeMap<u32, Vec<u8>>) -> Result<Snapshot, String> {
+    if parts.len() != ptr.parts as usize || parts.keys().copied().ne(0..ptr.parts) {
+        return Err(format!("{} of {} parts found", parts.len(), ptr.parts));
+    }
+    let mut all = Vec::with_capacity(ptr.bytes.min(1 << 30) as usize);
+    for p in parts.values() {
+        all.extend_from_slice(p);
+    }
+    if all.len() as u64 != ptr.bytes || fnv1a(&all) != ptr.checksum {
+        return Err("the joined parts do not match the pointer's length and checksum".into());
+    }
+    let s = Snapshot::decode(&all)?;
+    if s.topic != ptr.topic || s.partition != ptr.partition || s.generation != ptr.generation {
+        return Err("the joined parts belong to another partition".into());
+    }
+    Ok(s)
 }
 
 impl Snapshot {

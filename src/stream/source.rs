@@ -108,7 +108,13 @@ pub fn run(consumer: BaseConsumer<SourceContext>, pipeline: Arc<Mutex<Pipeline>>
         match consumer.poll(Duration::from_millis(100)) {
             Some(Ok(m)) => {
                 let (p, o) = (m.partition(), m.offset());
-                lock(&pipeline).on_message(p, o, m.key(), m.payload(), now_ms());
+                let again = lock(&pipeline).on_message(p, o, m.key(), m.payload(), now_ms());
+                drop(m);
+                if let Some(from) = again {
+                    if let Err(e) = consumer.seek(&topic, p, Offset::Offset(from), Duration::from_secs(10)) {
+                        tracing::error!(partition = p, "cannot read the partition again from offset {from}: {e}");
+                    }
+                }
             }
             Some(Err(e)) => {
                 if errors_logged < 20 {

@@ -127,6 +127,23 @@ fn dechunk(body: &str) -> String {
     out
 }
 
+/// Creates `topics` with `partitions` partitions each (those that exist are left alone).
+pub fn create_topics(topics: &[&str], partitions: i32) {
+    use rdkafka::admin::{AdminClient, AdminOptions, NewTopic, TopicReplication};
+    let admin: AdminClient<rdkafka::client::DefaultClientContext> =
+        ClientConfig::new().set("bootstrap.servers", brokers()).create().expect("admin client");
+    let new: Vec<NewTopic> = topics.iter().map(|t| NewTopic::new(t, partitions, TopicReplication::Fixed(1))).collect();
+    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().expect("runtime");
+    let results = rt
+        .block_on(admin.create_topics(&new, &AdminOptions::new().operation_timeout(Some(Duration::from_secs(10)))))
+        .expect("create topics");
+    for r in results {
+        if let Err((name, code)) = r {
+            assert_eq!(code, rdkafka::types::RDKafkaErrorCode::TopicAlreadyExists, "cannot create {name}");
+        }
+    }
+}
+
 /// Produces `(key, value)` messages and waits until the broker has them all.
 pub fn produce(topic: &str, messages: &[(String, Vec<u8>)]) {
     let p: BaseProducer = ClientConfig::new().set("bootstrap.servers", brokers()).set("linger.ms", "5").create().expect("producer");

@@ -275,7 +275,7 @@ pub(crate) fn argmax_random_tie(values: impl Iterator<Item = f64>, rng: &mut dyn
             ties = 1;
         } else if v == best {
             ties += 1;
-            if rng.next_u32() % ties == 0 {
+            if rng.next_u32().is_multiple_of(ties) {
                 choice = i;
             }
         }
