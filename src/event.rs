@@ -153,7 +153,8 @@ pub fn decode(bytes: &[u8], max_bytes: usize, now_ms: i64, max_skew_ms: i64) -> 
         "reward" => Kind::Reward,
         _ => return Err(Reason::UnknownKind),
     };
-    if event_id.is_empty() || event_id.chars().count() > 128 {
+    // At most 128 characters; a string of at most 128 bytes needs no counting.
+    if event_id.is_empty() || (event_id.len() > 128 && event_id.chars().count() > 128) {
         return Err(Reason::BadEventId);
     }
     if !valid_name(&experiment) || !valid_name(&arm) {

@@ -125,10 +125,17 @@ async fn demo(args: DemoArgs) -> anyhow::Result<()> {
     }
     stop.store(true, Ordering::SeqCst);
     generator.join().map_err(|_| anyhow::anyhow!("the traffic generator panicked"))??;
+    // The last events in flight are applied and published within a publish interval or two;
+    // the figures are read then, while the sidecar still holds its experiments.
+    if !sidecar.is_finished() {
+        tokio::time::sleep(Duration::from_millis(1500)).await;
+    }
+    let table = render(&served, started.elapsed(), produced.load(Ordering::Relaxed));
+    let outcome = summary(&served);
     shutdown.trigger();
     sidecar.await??;
-    println!("{}", render(&served, started.elapsed(), produced.load(Ordering::Relaxed)));
-    println!("{}", summary(&served));
+    println!("{table}");
+    println!("{outcome}");
     drop(mock);
     Ok(())
 }
@@ -164,7 +171,7 @@ struct View {
 }
 
 fn views(served: &Served) -> std::collections::BTreeMap<String, View> {
-    let text = served.experiments.read().map(|g| g.clone()).unwrap_or_default();
+    let text = served.experiments_json();
     serde_json::from_str(&text).unwrap_or_default()
 }
 

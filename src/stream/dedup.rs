@@ -42,7 +42,12 @@ impl DedupWindow {
         self.insert_hash(Self::hash(event_id));
     }
 
-    fn insert_hash(&mut self, h: u64) {
+    /// For a hash from [`DedupWindow::hash`]: the hot path hashes each id once.
+    pub fn contains_hash(&self, h: u64) -> bool {
+        self.seen.contains(&h)
+    }
+
+    pub fn insert_hash(&mut self, h: u64) {
         if !self.seen.insert(h) {
             return;
         }

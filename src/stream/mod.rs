@@ -65,7 +65,6 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
     };
     let pipeline = Arc::new(Mutex::new(Pipeline::new(
         settings.clone(),
-        served.metrics.clone(),
         served.clone(),
         Arc::new(sink),
         state_reader,

@@ -20,7 +20,9 @@ use crate::config::{Config, ResolvedExperiment};
 use crate::core::{Experiment, ExperimentSpec, Observation, Refusal};
 use crate::event::{self, Kind, Reason};
 use crate::telemetry::http::Served;
-use crate::telemetry::{ArmHandles, Metrics};
+use crate::telemetry::table::{ArmRow, ExperimentRow};
+use crate::telemetry::Metrics;
+use prometheus::IntCounter;
 
 /// Counts deliveries that failed, so that a snapshot is only trusted once it has landed.
 #[derive(Default)]
@@ -89,7 +91,6 @@ impl Settings {
 
 struct Entry {
     exp: Experiment,
-    handles: Vec<ArmHandles>,
     /// Impressions applied since the last publish: the batch the next weights are for.
     impressions_since: u64,
     changed: bool,
@@ -97,11 +98,36 @@ struct Entry {
     last_published: Option<Instant>,
 }
 
+impl Entry {
+    fn new(exp: Experiment) -> Entry {
+        Entry { exp, impressions_since: 0, changed: true, first_applied: None, last_published: None }
+    }
+}
+
+/// Event kinds and outcomes as counted: `apportion_events_total{kind, outcome}`.
+const KINDS: [&str; 3] = ["impression", "reward", "unknown"];
+const OUTCOMES: [&str; 3] = ["applied", "duplicate", "rejected"];
+const UNKNOWN: usize = 2;
+const APPLIED: usize = 0;
+const DUPLICATE: usize = 1;
+const REJECTED: usize = 2;
+
+fn kind_index(kind: Kind) -> usize {
+    match kind {
+        Kind::Impression => 0,
+        Kind::Reward => 1,
+    }
+}
+
 struct PartitionState {
     next_offset: i64,
     experiments: FxHashMap<String, Entry>,
     dedup: DedupWindow,
+    /// Dead letters and split events; the event counts live in `events` and are written into
+    /// `counters.events` only when a snapshot is taken.
     counters: Counters,
+    /// Events by `KINDS` × `OUTCOMES` (kind * 3 + outcome), restored values included.
+    events: [u64; 9],
     /// Generation of the last snapshot written (or loaded) of this partition.
     generation: u64,
     /// The part slot (0 or 1) of the newest complete snapshot written in parts; the next one
@@ -112,6 +138,19 @@ struct PartitionState {
     resume_check: Option<ResumeCheck>,
 }
 
+impl PartitionState {
+    fn counters_for_snapshot(&self) -> Counters {
+        let mut c = self.counters.clone();
+        c.events = BTreeMap::new();
+        for (i, &n) in self.events.iter().enumerate() {
+            if n > 0 {
+                c.events.insert(format!("{}/{}", KINDS[i / 3], OUTCOMES[i % 3]), n);
+            }
+        }
+        c
+    }
+}
+
 /// Reading resumed at `target`; the consumer was last asked to read from `asked` (≤ target).
 #[derive(Clone, Copy, Debug)]
 struct ResumeCheck {
@@ -119,16 +158,38 @@ struct ResumeCheck {
     asked: i64,
 }
 
-pub struct Pipeline {
+/// What applying an event needs besides the partition's own state.
+struct Ctx {
     s: Arc<Settings>,
-    metrics: Arc<Metrics>,
     served: Arc<Served>,
     sink: Arc<Sink>,
+    /// `apportion_events_total` handles, in the order of `PartitionState::events`.
+    events: Vec<IntCounter>,
+}
+
+/// One input message.
+struct Msg<'a> {
+    partition: i32,
+    offset: i64,
+    key: Option<&'a [u8]>,
+    bytes: &'a [u8],
+}
+
+/// Which experiments this instance holds, and which partition's copy publishes each.
+#[derive(Default)]
+struct Holdings {
+    /// Experiment → the partition whose copy publishes it (the first to see it).
+    owners: HashMap<String, i32>,
+    /// Experiments held over all partitions (for `limits.experiments`).
+    held: usize,
+}
+
+pub struct Pipeline {
+    ctx: Ctx,
     state_reader: BaseConsumer,
     state_partitions: i32,
     partitions: BTreeMap<i32, PartitionState>,
-    /// Experiment → the partition whose copy publishes it (the first to see it).
-    owners: HashMap<String, i32>,
+    holdings: Holdings,
     last_publish: Instant,
     last_snapshot: Instant,
 }
@@ -137,36 +198,138 @@ pub fn now_ms() -> i64 {
     std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map_or(0, |d| d.as_millis() as i64)
 }
 
+impl Ctx {
+    fn metrics(&self) -> &Metrics {
+        &self.served.metrics
+    }
+
+    fn count(&self, part: &mut PartitionState, kind: usize, outcome: usize) {
+        let i = kind * 3 + outcome;
+        self.events[i].inc();
+        part.events[i] += 1;
+    }
+
+    fn reject(&self, part: &mut PartitionState, msg: &Msg<'_>, reason: Reason, kind: usize) {
+        self.count(part, kind, REJECTED);
+        self.metrics().dead_letters.with_label_values(&[reason.code()]).inc();
+        *part.counters.dead_letters.entry(reason.code().to_string()).or_default() += 1;
+        let source = format!("{}/{}/{}", self.s.input_topic, msg.partition, msg.offset);
+        let headers = OwnedHeaders::new()
+            .insert(Header { key: "apportion-reason", value: Some(reason.code()) })
+            .insert(Header { key: "apportion-source", value: Some(&source) });
+        let mut record: BaseRecord<'_, [u8], [u8]> = BaseRecord::to(&self.s.dead_letter_topic).payload(msg.bytes).headers(headers);
+        if let Some(k) = msg.key {
+            record = record.key(k);
+        }
+        send_with_retry(&self.sink, record);
+    }
+
+    fn note_split(&self, part: &mut PartitionState, experiment: &str) {
+        self.metrics().split.with_label_values(&[experiment]).inc();
+        *part.counters.split.entry(experiment.to_string()).or_default() += 1;
+    }
+
+    /// Records which partition publishes `experiment`: the first to hold it.
+    fn note_owner(&self, holdings: &mut Holdings, part: &mut PartitionState, partition: i32, experiment: &str) {
+        match holdings.owners.get(experiment) {
+            None => {
+                holdings.owners.insert(experiment.to_string(), partition);
+            }
+            Some(&owner) if owner != partition => {
+                tracing::warn!(
+                    experiment,
+                    partitions = ?[owner, partition],
+                    "experiment seen on more than one input partition; key its events by experiment id. Partition {owner} publishes it"
+                );
+                self.note_split(part, experiment);
+            }
+            _ => {}
+        }
+    }
+
+    /// Decodes, checks and applies one event, or dead-letters it with its reason.
+    fn apply(&self, holdings: &mut Holdings, part: &mut PartitionState, msg: &Msg<'_>, now_ms: i64) {
+        let ev = match event::decode(msg.bytes, self.s.max_event_bytes, now_ms, self.s.max_skew_ms) {
+            Ok(ev) => ev,
+            Err(reason) => return self.reject(part, msg, reason, UNKNOWN),
+        };
+        let kind = kind_index(ev.kind);
+        let id_hash = DedupWindow::hash(&ev.event_id);
+        if part.dedup.contains_hash(id_hash) {
+            return self.count(part, kind, DUPLICATE);
+        }
+        if !part.experiments.contains_key(ev.experiment.as_ref()) {
+            let spec = match self.s.declared.get(ev.experiment.as_ref()) {
+                Some(r) => Some((r.spec.clone(), r.arms.clone())),
+                None => self.s.default_spec.clone().map(|s| (s, Vec::new())),
+            };
+            let Some((spec, arms)) = spec else {
+                return self.reject(part, msg, Reason::UnknownExperiment, kind);
+            };
+            if holdings.held >= self.s.max_experiments {
+                return self.reject(part, msg, Reason::TooManyExperiments, kind);
+            }
+            let exp = match Experiment::new(spec, &arms) {
+                Ok(e) => e,
+                Err(e) => {
+                    tracing::error!(experiment = %ev.experiment, "cannot create experiment: {e}");
+                    return self.reject(part, msg, Reason::UnknownExperiment, kind);
+                }
+            };
+            part.experiments.insert(ev.experiment.to_string(), Entry::new(exp));
+            holdings.held += 1;
+            self.note_owner(holdings, part, msg.partition, &ev.experiment);
+        } else if holdings.owners.get(ev.experiment.as_ref()).is_some_and(|&owner| owner != msg.partition) {
+            self.note_split(part, &ev.experiment);
+        }
+        let Some(entry) = part.experiments.get_mut(ev.experiment.as_ref()) else {
+            return;
+        };
+        let Ok(arm) = entry.exp.arm_or_add(&ev.arm) else {
+            return self.reject(part, msg, Reason::TooManyArms, kind);
+        };
+        let obs = match ev.kind {
+            Kind::Impression => Observation::Impression { count: ev.count },
+            Kind::Reward => Observation::Reward { value: ev.reward },
+        };
+        if let Err(Refusal::RewardOutOfRange | Refusal::TooManyArms) = entry.exp.observe(arm, ev.ts_ms, obs) {
+            return self.reject(part, msg, Reason::RewardOutOfRange, kind);
+        }
+        if let Observation::Impression { count } = obs {
+            entry.impressions_since = entry.impressions_since.saturating_add(count);
+        }
+        entry.changed = true;
+        if entry.first_applied.is_none() {
+            entry.first_applied = Some(Instant::now());
+        }
+        part.dedup.insert_hash(id_hash);
+        self.count(part, kind, APPLIED);
+    }
+}
+
 impl Pipeline {
-    pub fn new(
-        s: Arc<Settings>,
-        metrics: Arc<Metrics>,
-        served: Arc<Served>,
-        sink: Arc<Sink>,
-        state_reader: BaseConsumer,
-        state_partitions: i32,
-    ) -> Self {
+    pub fn new(s: Arc<Settings>, served: Arc<Served>, sink: Arc<Sink>, state_reader: BaseConsumer, state_partitions: i32) -> Self {
+        // An event of unknown kind is never applied nor a duplicate: those two cells count
+        // nothing, so they get no series.
+        let events = (0..9)
+            .map(|i| match (i / 3, i % 3) {
+                (UNKNOWN, APPLIED | DUPLICATE) => IntCounter::new("apportion_unused", "never exported").expect("a valid name"),
+                (k, o) => served.metrics.events.with_label_values(&[KINDS[k], OUTCOMES[o]]),
+            })
+            .collect();
         Pipeline {
-            s,
-            metrics,
-            served,
-            sink,
+            ctx: Ctx { s, served, sink, events },
             state_reader,
             state_partitions: state_partitions.max(1),
             partitions: BTreeMap::new(),
-            owners: HashMap::new(),
+            holdings: Holdings::default(),
             last_publish: Instant::now(),
             last_snapshot: Instant::now(),
         }
     }
 
     pub fn settings(&self) -> &Settings {
-        &self.s
-    }
-
-    fn count(&self, part: &mut PartitionState, kind: &str, outcome: &str) {
-        self.metrics.events.with_label_values(&[kind, outcome]).inc();
-        *part.counters.events.entry(format!("{kind}/{outcome}")).or_default() += 1;
+        &self.ctx.s
     }
 
     /// Applies one message of input partition `partition` at `offset`. Returns an offset to
@@ -179,8 +342,7 @@ impl Pipeline {
     /// further back (messages before the resume offset are passed over) until a message at or
     /// before it arrives, or reading from offset 0 shows the gap is real (compaction, markers).
     pub fn on_message(&mut self, partition: i32, offset: i64, key: Option<&[u8]>, payload: Option<&[u8]>, now_ms: i64) -> Option<i64> {
-        let mut part = self.partitions.remove(&partition)?;
-        let mut seek = None;
+        let part = self.partitions.get_mut(&partition)?;
         if let Some(check) = part.resume_check {
             if offset <= check.target || check.asked == 0 {
                 part.resume_check = None;
@@ -194,177 +356,81 @@ impl Pipeline {
                     "the broker skipped past the resume offset; reading again from offset {asked}"
                 );
                 part.resume_check = Some(ResumeCheck { target: check.target, asked });
-                seek = Some(asked);
+                return Some(asked);
             }
         }
-        if seek.is_none() && offset >= part.next_offset {
-            self.apply(&mut part, partition, offset, key, payload.unwrap_or_default(), now_ms);
+        if offset >= part.next_offset {
+            let msg = Msg { partition, offset, key, bytes: payload.unwrap_or_default() };
+            self.ctx.apply(&mut self.holdings, part, &msg, now_ms);
             part.next_offset = offset + 1;
         }
-        self.partitions.insert(partition, part);
-        seek
+        None
     }
 
-    fn apply(&mut self, part: &mut PartitionState, partition: i32, offset: i64, key: Option<&[u8]>, bytes: &[u8], now_ms: i64) {
-        let ev = match event::decode(bytes, self.s.max_event_bytes, now_ms, self.s.max_skew_ms) {
-            Ok(ev) => ev,
-            Err(reason) => return self.reject(part, partition, offset, key, bytes, reason, "unknown"),
-        };
-        let kind = ev.kind.as_str();
-        if part.dedup.contains(&ev.event_id) {
-            return self.count(part, kind, "duplicate");
-        }
-        if !part.experiments.contains_key(ev.experiment.as_ref()) {
-            let total: usize = self.partitions.values().map(|p| p.experiments.len()).sum::<usize>() + part.experiments.len();
-            let spec = match self.s.declared.get(ev.experiment.as_ref()) {
-                Some(r) => Some((r.spec.clone(), r.arms.clone())),
-                None => self.s.default_spec.clone().map(|s| (s, Vec::new())),
-            };
-            let Some((spec, arms)) = spec else {
-                return self.reject(part, partition, offset, key, bytes, Reason::UnknownExperiment, kind);
-            };
-            if total >= self.s.max_experiments {
-                return self.reject(part, partition, offset, key, bytes, Reason::TooManyExperiments, kind);
-            }
-            let exp = match Experiment::new(spec, &arms) {
-                Ok(e) => e,
-                Err(e) => {
-                    tracing::error!(experiment = %ev.experiment, "cannot create experiment: {e}");
-                    return self.reject(part, partition, offset, key, bytes, Reason::UnknownExperiment, kind);
-                }
-            };
-            let handles = arms.iter().map(|a| self.metrics.arm_handles(&ev.experiment, a)).collect();
-            part.experiments.insert(
-                ev.experiment.to_string(),
-                Entry { exp, handles, impressions_since: 0, changed: true, first_applied: None, last_published: None },
-            );
-            self.note_owner(part, partition, &ev.experiment);
-        } else if let Some(&owner) = self.owners.get(ev.experiment.as_ref()) {
-            if owner != partition {
-                self.metrics.split.with_label_values(&[&ev.experiment]).inc();
-                *part.counters.split.entry(ev.experiment.to_string()).or_default() += 1;
-            }
-        }
-        let metrics = &self.metrics;
-        let Some(entry) = part.experiments.get_mut(ev.experiment.as_ref()) else {
-            return;
-        };
-        let arm = match entry.exp.arm_or_add(&ev.arm) {
-            Ok(j) => j,
-            Err(_) => return self.reject(part, partition, offset, key, bytes, Reason::TooManyArms, kind),
-        };
-        if arm == entry.handles.len() {
-            entry.handles.push(metrics.arm_handles(&ev.experiment, &ev.arm));
-        }
-        let obs = match ev.kind {
-            Kind::Impression => Observation::Impression { count: ev.count },
-            Kind::Reward => Observation::Reward { value: ev.reward },
-        };
-        if let Err(Refusal::RewardOutOfRange | Refusal::TooManyArms) = entry.exp.observe(arm, ev.ts_ms, obs) {
-            return self.reject(part, partition, offset, key, bytes, Reason::RewardOutOfRange, kind);
-        }
-        let h = &entry.handles[arm];
-        match obs {
-            Observation::Impression { count } => {
-                h.pulls.inc_by(count);
-                entry.impressions_since = entry.impressions_since.saturating_add(count);
-                if let Some(t) = entry.exp.arm_stats()[arm].last_pull_ms {
-                    h.last_pull.set(t as f64 / 1000.0);
-                }
-            }
-            Observation::Reward { value } => h.reward.inc_by(value),
-        }
-        entry.changed = true;
-        entry.first_applied.get_or_insert_with(Instant::now);
-        part.dedup.insert(&ev.event_id);
-        self.count(part, kind, "applied");
-    }
-
-    fn note_owner(&mut self, part: &mut PartitionState, partition: i32, experiment: &str) {
-        match self.owners.get(experiment) {
-            None => {
-                self.owners.insert(experiment.to_string(), partition);
-            }
-            Some(&owner) if owner != partition => {
-                tracing::warn!(
-                    experiment,
-                    partitions = ?[owner, partition],
-                    "experiment seen on more than one input partition; key its events by experiment id. Partition {owner} publishes it"
-                );
-                self.metrics.split.with_label_values(&[experiment]).inc();
-                *part.counters.split.entry(experiment.to_string()).or_default() += 1;
-            }
-            _ => {}
-        }
-    }
-
-    #[allow(clippy::too_many_arguments)]
-    fn reject(&self, part: &mut PartitionState, partition: i32, offset: i64, key: Option<&[u8]>, bytes: &[u8], reason: Reason, kind: &str) {
-        self.count(part, kind, "rejected");
-        self.metrics.dead_letters.with_label_values(&[reason.code()]).inc();
-        *part.counters.dead_letters.entry(reason.code().to_string()).or_default() += 1;
-        let source = format!("{}/{partition}/{offset}", self.s.input_topic);
-        let headers = OwnedHeaders::new()
-            .insert(Header { key: "apportion-reason", value: Some(reason.code()) })
-            .insert(Header { key: "apportion-source", value: Some(&source) });
-        let mut record: BaseRecord<'_, [u8], [u8]> = BaseRecord::to(&self.s.dead_letter_topic).payload(bytes).headers(headers);
-        if let Some(k) = key {
-            record = record.key(k);
-        }
-        send_with_retry(&self.sink, record);
-    }
-
-    /// Publishes the weights of every experiment that is due. Called between messages.
+    /// Publishes the weights of every experiment that is due, and refreshes the figures the
+    /// HTTP side serves for every experiment that changed. Called between messages.
     pub fn publish_due(&mut self, force: bool) {
-        if !force && self.last_publish.elapsed() < self.s.publish_interval {
+        let s = &self.ctx.s;
+        if !force && self.last_publish.elapsed() < s.publish_interval {
             return;
         }
         self.last_publish = Instant::now();
         let now = now_ms();
-        let mut view = serde_json::Map::new();
+        let metrics = self.ctx.metrics();
+        let mut updates: Vec<(String, ExperimentRow)> = Vec::new();
         for (&partition, part) in self.partitions.iter_mut() {
             for (id, e) in part.experiments.iter_mut() {
-                if self.owners.get(id) != Some(&partition) {
+                if self.holdings.owners.get(id) != Some(&partition) {
                     continue;
                 }
-                let heartbeat = e.last_published.is_none_or(|t| t.elapsed() >= self.s.heartbeat);
-                if e.changed || heartbeat {
-                    let weights = e.exp.weights(now, e.impressions_since.max(1));
-                    let moved = e
-                        .exp
-                        .last_weights()
-                        .iter()
-                        .zip(&weights)
-                        .map(|(a, b)| if a.is_finite() { (a - b).abs() } else { f64::INFINITY })
-                        .fold(0.0, f64::max);
-                    let new_arm = weights.len() != e.exp.last_weights().len();
-                    if e.exp.version() == 0 || heartbeat || new_arm || moved >= self.s.min_change {
-                        let version = e.exp.commit(&weights);
-                        let alloc = crate::core::Allocation { version, weights, report: e.exp.report(now) };
-                        let msg = WeightsMessage::new(id, &e.exp, &alloc, now);
-                        match serde_json::to_vec(&msg) {
-                            Ok(bytes) => {
-                                let record = BaseRecord::to(&self.s.weights_topic).key(id.as_bytes()).payload(&bytes[..]);
-                                send_with_retry(&self.sink, record);
-                            }
-                            Err(err) => tracing::error!(experiment = %id, "cannot encode weights: {err}"),
+                let heartbeat = e.last_published.is_none_or(|t| t.elapsed() >= s.heartbeat);
+                if !(e.changed || heartbeat) {
+                    continue;
+                }
+                let weights = e.exp.weights(now, e.impressions_since.max(1));
+                let moved = e
+                    .exp
+                    .last_weights()
+                    .iter()
+                    .zip(&weights)
+                    .map(|(a, b)| if a.is_finite() { (a - b).abs() } else { f64::INFINITY })
+                    .fold(0.0, f64::max);
+                let new_arm = weights.len() != e.exp.last_weights().len();
+                let publish = e.exp.version() == 0 || heartbeat || new_arm || moved >= s.min_change;
+                let report = if publish {
+                    let version = e.exp.commit(&weights);
+                    let alloc = crate::core::Allocation { version, weights, report: e.exp.report(now) };
+                    let msg = WeightsMessage::new(id, &e.exp, &alloc, now);
+                    match serde_json::to_vec(&msg) {
+                        Ok(bytes) => {
+                            let record = BaseRecord::to(&s.weights_topic).key(id.as_bytes()).payload(&bytes[..]);
+                            send_with_retry(&self.ctx.sink, record);
                         }
-                        update_gauges(&self.metrics, id, &e.exp, &alloc, now);
-                        if let Some(t) = e.first_applied.take() {
-                            self.metrics.publish_latency.observe(t.elapsed().as_secs_f64());
-                        }
-                        e.last_published = Some(Instant::now());
-                        e.impressions_since = 0;
+                        Err(err) => tracing::error!(experiment = %id, "cannot encode weights: {err}"),
                     }
-                    e.changed = false;
-                }
-                if let Ok(v) = serde_json::to_value(ExperimentView::new(id, partition, &e.exp, now)) {
-                    view.insert(id.clone(), v);
-                }
+                    if let Some(t) = e.first_applied.take() {
+                        metrics.publish_latency.observe(t.elapsed().as_secs_f64());
+                    }
+                    e.last_published = Some(Instant::now());
+                    e.impressions_since = 0;
+                    alloc.report
+                } else {
+                    e.exp.report(now)
+                };
+                e.changed = false;
+                updates.push((id.clone(), row(partition, &e.exp, &report, publish.then_some(now))));
             }
         }
-        if let Ok(mut g) = self.served.experiments.write() {
-            *g = serde_json::Value::Object(view).to_string();
+        if updates.is_empty() {
+            return;
+        }
+        let mut table = self.ctx.served.table.write().unwrap_or_else(|p| p.into_inner());
+        for (id, mut r) in updates {
+            if r.published_ms.is_none() {
+                // Not published this round: the time of the last publish stands.
+                r.published_ms = table.rows.get(&id).and_then(|old| old.published_ms);
+            }
+            table.rows.insert(id, r);
         }
     }
 
@@ -375,7 +441,7 @@ impl Pipeline {
     /// only once every part has landed, so a reader never finds a pointer to missing parts.
     pub fn snapshot(&mut self, partitions: &[i32]) -> Vec<(i32, i64)> {
         let written_at_ms = now_ms();
-        let failed_before = self.sink.context().failed.load(Ordering::SeqCst);
+        let failed_before = self.ctx.sink.context().failed.load(Ordering::SeqCst);
         let mut done = Vec::new();
         let mut pointers: Vec<Pointer> = Vec::new();
         for &p in partitions {
@@ -383,14 +449,14 @@ impl Pipeline {
             part.generation += 1;
             let snap = Snapshot {
                 format: snapshot::FORMAT,
-                topic: self.s.input_topic.clone(),
+                topic: self.ctx.s.input_topic.clone(),
                 partition: p,
                 next_offset: part.next_offset,
                 generation: part.generation,
                 written_at_ms,
                 experiments: part.experiments.iter().map(|(k, e)| (k.clone(), e.exp.state())).collect(),
                 duplicates: part.dedup.ids(),
-                counters: part.counters.clone(),
+                counters: part.counters_for_snapshot(),
             };
             let bytes = match snap.encode() {
                 Ok(b) => b,
@@ -400,20 +466,20 @@ impl Pipeline {
                 }
             };
             let sp = p % self.state_partitions;
-            if bytes.len() <= self.s.snapshot_part_bytes {
-                let key = snapshot::key(&self.s.input_topic, p);
-                send_with_retry(&self.sink, BaseRecord::to(&self.s.state_topic).key(key.as_bytes()).payload(&bytes[..]).partition(sp));
+            if bytes.len() <= self.ctx.s.snapshot_part_bytes {
+                let key = snapshot::key(&self.ctx.s.input_topic, p);
+                send_with_retry(&self.ctx.sink, BaseRecord::to(&self.ctx.s.state_topic).key(key.as_bytes()).payload(&bytes[..]).partition(sp));
             } else {
                 let slot = 1 - part.complete_slot;
-                let chunks: Vec<&[u8]> = bytes.chunks(self.s.snapshot_part_bytes).collect();
+                let chunks: Vec<&[u8]> = bytes.chunks(self.ctx.s.snapshot_part_bytes).collect();
                 for (i, chunk) in chunks.iter().enumerate() {
-                    let key = snapshot::part_key(&self.s.input_topic, p, slot, i as u32);
+                    let key = snapshot::part_key(&self.ctx.s.input_topic, p, slot, i as u32);
                     let value = snapshot::encode_part(part.generation, i as u32, chunk);
-                    send_with_retry(&self.sink, BaseRecord::to(&self.s.state_topic).key(key.as_bytes()).payload(&value[..]).partition(sp));
+                    send_with_retry(&self.ctx.sink, BaseRecord::to(&self.ctx.s.state_topic).key(key.as_bytes()).payload(&value[..]).partition(sp));
                 }
                 pointers.push(Pointer {
                     format: snapshot::FORMAT,
-                    topic: self.s.input_topic.clone(),
+                    topic: self.ctx.s.input_topic.clone(),
                     partition: p,
                     generation: part.generation,
                     slot,
@@ -429,11 +495,11 @@ impl Pipeline {
                 return Vec::new();
             }
             for ptr in &pointers {
-                let key = snapshot::key(&self.s.input_topic, ptr.partition);
+                let key = snapshot::key(&self.ctx.s.input_topic, ptr.partition);
                 match serde_json::to_vec(ptr) {
                     Ok(value) => send_with_retry(
-                        &self.sink,
-                        BaseRecord::to(&self.s.state_topic)
+                        &self.ctx.sink,
+                        BaseRecord::to(&self.ctx.s.state_topic)
                             .key(key.as_bytes())
                             .payload(&value[..])
                             .partition(ptr.partition % self.state_partitions),
@@ -452,7 +518,7 @@ impl Pipeline {
         }
         let secs = written_at_ms as f64 / 1000.0;
         for &(p, _) in &done {
-            self.metrics.snapshot_time.with_label_values(&[&p.to_string()]).set(secs);
+            self.ctx.metrics().snapshot_time.with_label_values(&[&p.to_string()]).set(secs);
         }
         self.last_snapshot = Instant::now();
         done
@@ -460,11 +526,11 @@ impl Pipeline {
 
     /// Waits until everything sent has been acknowledged; false if something was not.
     fn landed(&self, failed_before: u64) -> bool {
-        if let Err(e) = self.sink.flush(Duration::from_secs(30)) {
+        if let Err(e) = self.ctx.sink.flush(Duration::from_secs(30)) {
             tracing::error!("snapshots not confirmed by the broker: {e}");
             return false;
         }
-        if self.sink.context().failed.load(Ordering::SeqCst) != failed_before {
+        if self.ctx.sink.context().failed.load(Ordering::SeqCst) != failed_before {
             tracing::error!("a snapshot was not delivered; offsets are not committed");
             return false;
         }
@@ -472,7 +538,7 @@ impl Pipeline {
     }
 
     pub fn snapshot_due(&mut self) -> Vec<(i32, i64)> {
-        if self.last_snapshot.elapsed() < self.s.snapshot_interval {
+        if self.last_snapshot.elapsed() < self.ctx.s.snapshot_interval {
             return Vec::new();
         }
         let all: Vec<i32> = self.partitions.keys().copied().collect();
@@ -510,13 +576,11 @@ impl Pipeline {
                 "partition assigned"
             );
             let ids: Vec<String> = part.experiments.keys().cloned().collect();
-            self.partitions.insert(p, part);
+            self.holdings.held += ids.len();
             for id in ids {
-                if let Some(mut part) = self.partitions.remove(&p) {
-                    self.note_owner(&mut part, p, &id);
-                    self.partitions.insert(p, part);
-                }
+                self.ctx.note_owner(&mut self.holdings, &mut part, p, &id);
             }
+            self.partitions.insert(p, part);
         }
         out
     }
@@ -526,8 +590,9 @@ impl Pipeline {
             return PartitionState {
                 next_offset: 0,
                 experiments: FxHashMap::default(),
-                dedup: DedupWindow::new(self.s.duplicate_window),
+                dedup: DedupWindow::new(self.ctx.s.duplicate_window),
                 counters: Counters::default(),
+                events: [0; 9],
                 generation: 0,
                 complete_slot: 1,
                 resume_check: None,
@@ -536,12 +601,12 @@ impl Pipeline {
         // Publishes after the snapshot may have been lost with a crash; versions go up by at
         // least as many as could have been published since it was written.
         let since = (now_ms() - snap.written_at_ms).max(0) as f64;
-        let lost = (since / self.s.publish_interval.as_millis().max(1) as f64).ceil() as u64 + 1;
+        let lost = (since / self.ctx.s.publish_interval.as_millis().max(1) as f64).ceil() as u64 + 1;
         let mut experiments = FxHashMap::default();
         for (id, state) in snap.experiments {
-            let (spec, arms) = match self.s.declared.get(&id) {
+            let (spec, arms) = match self.ctx.s.declared.get(&id) {
                 Some(r) => (r.spec.clone(), r.arms.clone()),
-                None => match &self.s.default_spec {
+                None => match &self.ctx.s.default_spec {
                     Some(s) => (s.clone(), Vec::new()),
                     None => {
                         tracing::warn!(experiment = %id, partition = p, "experiment in the snapshot is no longer declared; dropped");
@@ -553,38 +618,36 @@ impl Pipeline {
             match Experiment::restore(spec, &arms, state) {
                 Ok(mut exp) => {
                     exp.raise_version(version + lost);
-                    let handles: Vec<ArmHandles> = exp.arm_names().iter().map(|a| self.metrics.arm_handles(&id, a)).collect();
-                    for (h, s) in handles.iter().zip(exp.arm_stats()) {
-                        h.pulls.inc_by(s.pulls_total);
-                        h.reward.inc_by(s.reward_total);
-                        if let Some(t) = s.last_pull_ms {
-                            h.last_pull.set(t as f64 / 1000.0);
-                        }
-                    }
-                    experiments.insert(
-                        id,
-                        Entry { exp, handles, impressions_since: 0, changed: true, first_applied: None, last_published: None },
-                    );
+                    experiments.insert(id, Entry::new(exp));
                 }
                 Err(e) => tracing::error!(experiment = %id, partition = p, "cannot restore experiment under the current configuration: {e}"),
             }
         }
-        for (k, v) in &snap.counters.events {
-            if let Some((kind, outcome)) = k.split_once('/') {
-                self.metrics.events.with_label_values(&[kind, outcome]).inc_by(*v);
+        let mut events = [0u64; 9];
+        for (k, &v) in &snap.counters.events {
+            let cell = k.split_once('/').and_then(|(kind, outcome)| {
+                Some(KINDS.iter().position(|x| *x == kind)? * 3 + OUTCOMES.iter().position(|x| *x == outcome)?)
+            });
+            match cell {
+                Some(i) => {
+                    events[i] = v;
+                    self.ctx.events[i].inc_by(v);
+                }
+                None => tracing::warn!(partition = p, counter = %k, "unknown event counter in the snapshot; dropped"),
             }
         }
         for (reason, v) in &snap.counters.dead_letters {
-            self.metrics.dead_letters.with_label_values(&[reason]).inc_by(*v);
+            self.ctx.metrics().dead_letters.with_label_values(&[reason]).inc_by(*v);
         }
         for (exp, v) in &snap.counters.split {
-            self.metrics.split.with_label_values(&[exp]).inc_by(*v);
+            self.ctx.metrics().split.with_label_values(&[exp]).inc_by(*v);
         }
         PartitionState {
             next_offset: snap.next_offset,
             experiments,
-            dedup: DedupWindow::restore(self.s.duplicate_window, &snap.duplicates),
+            dedup: DedupWindow::restore(self.ctx.s.duplicate_window, &snap.duplicates),
             counters: snap.counters,
+            events,
             generation: snap.generation,
             complete_slot: 1,
             resume_check: None,
@@ -592,20 +655,24 @@ impl Pipeline {
     }
 
     /// Hands partitions back: publishes what is due, snapshots them, drops their state and
-    /// their metric series. Returns the offsets to commit.
+    /// what the HTTP side shows of them. Returns the offsets to commit.
     pub fn revoke(&mut self, partitions: &[i32]) -> Vec<(i32, i64)> {
         self.publish_due(true);
         let offsets = self.snapshot(partitions);
         for p in partitions {
             if let Some(part) = self.partitions.remove(p) {
-                for (id, e) in &part.experiments {
-                    if self.owners.get(id) == Some(p) {
-                        self.owners.remove(id);
+                self.holdings.held = self.holdings.held.saturating_sub(part.experiments.len());
+                let mut table = self.ctx.served.table.write().unwrap_or_else(|e| e.into_inner());
+                for id in part.experiments.keys() {
+                    if self.holdings.owners.get(id) == Some(p) {
+                        self.holdings.owners.remove(id);
+                        table.rows.remove(id);
                     }
-                    self.metrics.remove_experiment(id, e.exp.arm_names());
+                    self.ctx.metrics().remove_experiment(id);
                 }
-                let _ = self.metrics.snapshot_time.remove_label_values(&[&p.to_string()]);
-                let _ = self.metrics.consumer_lag.remove_label_values(&[&self.s.input_topic, &p.to_string()]);
+                drop(table);
+                let _ = self.ctx.metrics().snapshot_time.remove_label_values(&[&p.to_string()]);
+                let _ = self.ctx.metrics().consumer_lag.remove_label_values(&[&self.ctx.s.input_topic, &p.to_string()]);
             }
             tracing::info!(partition = p, "partition handed over");
         }
@@ -619,9 +686,9 @@ impl Pipeline {
     /// batch (see `on_message`), and reading on to the end keeps such a skip from hiding
     /// anything; the steps grow fourfold, so this reads at most 4/3 of the last step.
     fn load_snapshot(&self, p: i32) -> Result<Option<(Snapshot, u64)>, String> {
-        let topic = &self.s.state_topic;
+        let topic = &self.ctx.s.state_topic;
         let sp = p % self.state_partitions;
-        let key = snapshot::key(&self.s.input_topic, p);
+        let key = snapshot::key(&self.ctx.s.input_topic, p);
         let (low, high) = self
             .state_reader
             .fetch_watermarks(topic, sp, Duration::from_secs(10))
@@ -648,11 +715,11 @@ impl Pipeline {
             let mut chosen = None;
             for (offset, bytes) in &found {
                 match Stored::decode(bytes) {
-                    Ok(Stored::Whole(s)) if s.partition == p && s.topic == self.s.input_topic => {
+                    Ok(Stored::Whole(s)) if s.partition == p && s.topic == self.ctx.s.input_topic => {
                         chosen = Some((*s, 1));
                         break;
                     }
-                    Ok(Stored::Parts(ptr)) if ptr.partition == p && ptr.topic == self.s.input_topic => {
+                    Ok(Stored::Parts(ptr)) if ptr.partition == p && ptr.topic == self.ctx.s.input_topic => {
                         match self.gather_parts(sp, low, *offset, &ptr) {
                             Ok(s) => {
                                 chosen = Some((s, ptr.slot));
@@ -676,7 +743,7 @@ impl Pipeline {
 
     /// Collects the parts `ptr` names, reading backwards from the pointer's offset `before`.
     fn gather_parts(&self, sp: i32, low: i64, before: i64, ptr: &Pointer) -> Result<Snapshot, String> {
-        let prefix = format!("{}/{}/part/{}/", self.s.input_topic, ptr.partition, ptr.slot);
+        let prefix = format!("{}/{}/part/{}/", self.ctx.s.input_topic, ptr.partition, ptr.slot);
         // index → (offset, bytes) of the newest copy before the pointer.
         let mut parts: BTreeMap<u32, (i64, Vec<u8>)> = BTreeMap::new();
         let mut start = before;
@@ -703,7 +770,7 @@ impl Pipeline {
     /// and value to `f`. With `past_end`, reads on past `end` until the partition has been
     /// quiet for 300 ms (for brokers that report the end short).
     fn read_range(&self, sp: i32, start: i64, end: i64, past_end: bool, f: &mut StateVisitor<'_>) -> Result<(), String> {
-        let topic = &self.s.state_topic;
+        let topic = &self.ctx.s.state_topic;
         let mut tpl = TopicPartitionList::new();
         tpl.add_partition_offset(topic, sp, Offset::Offset(start)).map_err(|e| e.to_string())?;
         self.state_reader.assign(&tpl).map_err(|e| e.to_string())?;
@@ -747,67 +814,35 @@ fn send_with_retry(sink: &Sink, mut record: BaseRecord<'_, [u8], [u8]>) {
     tracing::error!(topic = record.topic, "producer queue stayed full for a minute; message dropped");
 }
 
-fn update_gauges(m: &Metrics, id: &str, exp: &Experiment, alloc: &crate::core::Allocation, now_ms: i64) {
-    for (j, name) in exp.arm_names().iter().enumerate() {
-        let l = &[id, name.as_str()];
-        let a = &alloc.report.arms[j];
-        m.arm_mean.with_label_values(l).set(a.mean);
-        m.arm_width.with_label_values(l).set(a.width());
-        m.arm_weight.with_label_values(l).set(alloc.weights[j]);
-        m.arm_undecided.with_label_values(l).set(i64::from(a.undecided));
-    }
-    m.regret.with_label_values(&[id]).set(alloc.report.regret_estimate);
-    m.exploration
-        .with_label_values(&[id])
-        .set(crate::core::report::exploration_ratio(&alloc.weights, alloc.report.leader));
-    m.weights_version.with_label_values(&[id]).set(alloc.version as i64);
-    m.weights_published.with_label_values(&[id]).set(now_ms as f64 / 1000.0);
-}
-
-/// What `/experiments` shows of one experiment.
-#[derive(serde::Serialize)]
-struct ExperimentView<'a> {
-    partition: i32,
-    policy: &'a str,
-    version: u64,
-    leader: Option<&'a str>,
-    regret_estimate: f64,
-    arms: BTreeMap<&'a str, ArmView>,
-}
-
-#[derive(serde::Serialize)]
-struct ArmView {
-    pulls: u64,
-    reward: f64,
-    mean: f64,
-    ci_low: f64,
-    ci_high: f64,
-    weight: Option<f64>,
-    undecided: bool,
-}
-
-impl<'a> ExperimentView<'a> {
-    fn new(_id: &str, partition: i32, exp: &'a Experiment, now: i64) -> Self {
-        let report = exp.report(now);
-        let names = exp.arm_names();
-        ExperimentView {
-            partition,
-            policy: exp.policy_name(),
-            version: exp.version(),
-            leader: report.leader.map(|l| names[l].as_str()),
-            regret_estimate: report.regret_estimate,
-            arms: names
-                .iter()
-                .zip(report.arms.iter())
-                .zip(exp.last_weights().iter().map(|w| w.is_finite().then_some(*w)).chain(std::iter::repeat(None)))
-                .map(|((n, a), w)| {
-                    (
-                        n.as_str(),
-                        ArmView { pulls: a.pulls, reward: a.reward, mean: a.mean, ci_low: a.ci_low, ci_high: a.ci_high, weight: w, undecided: a.undecided },
-                    )
-                })
-                .collect(),
-        }
+/// What the HTTP side shows of one experiment, from its state and latest report.
+fn row(partition: i32, exp: &Experiment, report: &crate::core::report::Report, published_ms: Option<i64>) -> ExperimentRow {
+    let weights = exp.last_weights();
+    let published = exp.version() > 0;
+    ExperimentRow {
+        partition,
+        policy: exp.policy_name(),
+        version: exp.version(),
+        leader: report.leader,
+        regret_estimate: report.regret_estimate,
+        exploration: published.then(|| crate::core::report::exploration_ratio(weights, report.leader)),
+        published_ms,
+        arms: exp
+            .arm_names()
+            .iter()
+            .zip(&report.arms)
+            .zip(exp.arm_stats())
+            .enumerate()
+            .map(|(j, ((name, a), st))| ArmRow {
+                name: name.clone(),
+                pulls: a.pulls,
+                reward: a.reward,
+                mean: a.mean,
+                ci_low: a.ci_low,
+                ci_high: a.ci_high,
+                weight: weights.get(j).copied().filter(|w| w.is_finite()),
+                undecided: a.undecided,
+                last_pull_ms: st.last_pull_ms,
+            })
+            .collect(),
     }
 }
-

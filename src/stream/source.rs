@@ -104,7 +104,10 @@ pub fn commit<C: Consumer<SourceContext>>(consumer: &C, topic: &str, offsets: &[
 pub fn run(consumer: BaseConsumer<SourceContext>, pipeline: Arc<Mutex<Pipeline>>, shutdown: Shutdown) {
     let topic = consumer.context().input_topic.clone();
     let mut errors_logged = 0u32;
+    // Publishing and snapshots are due on a clock; it is read every few messages, not each one.
+    let mut since_check = 0u32;
     while !shutdown.is_triggered() {
+        since_check = since_check.saturating_add(1);
         match consumer.poll(Duration::from_millis(100)) {
             Some(Ok(m)) => {
                 let (p, o) = (m.partition(), m.offset());
@@ -122,8 +125,15 @@ pub fn run(consumer: BaseConsumer<SourceContext>, pipeline: Arc<Mutex<Pipeline>>
                     errors_logged += 1;
                 }
             }
-            None => errors_logged = 0,
+            None => {
+                errors_logged = 0;
+                since_check = 64;
+            }
         }
+        if since_check < 64 {
+            continue;
+        }
+        since_check = 0;
         let offsets = {
             let mut p = lock(&pipeline);
             p.publish_due(false);

@@ -10,6 +10,7 @@ use axum::response::IntoResponse;
 use axum::routing::get;
 use axum::Router;
 
+use super::table::Table;
 use super::Metrics;
 use crate::shutdown::Shutdown;
 
@@ -17,13 +18,13 @@ use crate::shutdown::Shutdown;
 pub struct Served {
     pub metrics: Arc<Metrics>,
     pub ready: AtomicBool,
-    /// JSON of the experiments this instance holds, refreshed on every publish round.
-    pub experiments: RwLock<String>,
+    /// The experiments this instance holds, refreshed on every publish round.
+    pub table: RwLock<Table>,
 }
 
 impl Served {
     pub fn new(metrics: Arc<Metrics>) -> Arc<Served> {
-        Arc::new(Served { metrics, ready: AtomicBool::new(false), experiments: RwLock::new("{}".into()) })
+        Arc::new(Served { metrics, ready: AtomicBool::new(false), table: RwLock::new(Table::default()) })
     }
 
     pub fn set_ready(&self, ready: bool) {
@@ -33,6 +34,24 @@ impl Served {
 
     pub fn is_ready(&self) -> bool {
         self.ready.load(Ordering::SeqCst)
+    }
+
+    /// The whole `/metrics` text: instance-wide metrics, then every experiment's and arm's.
+    pub fn render_metrics(&self) -> String {
+        let mut out = self.metrics.encode();
+        match self.table.read() {
+            Ok(t) => t.write_prometheus(&mut out),
+            Err(p) => p.into_inner().write_prometheus(&mut out),
+        }
+        out
+    }
+
+    /// The `/experiments` JSON.
+    pub fn experiments_json(&self) -> String {
+        match self.table.read() {
+            Ok(t) => t.to_json(),
+            Err(p) => p.into_inner().to_json(),
+        }
     }
 }
 
@@ -58,7 +77,9 @@ pub async fn serve(addr: SocketAddr, served: Arc<Served>, shutdown: Shutdown) ->
 }
 
 async fn metrics(State(s): State<Arc<Served>>) -> impl IntoResponse {
-    ([(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")], s.metrics.encode())
+    // With 100 000 arms the text runs to tens of MB: rendered off the async workers.
+    let body = tokio::task::spawn_blocking(move || s.render_metrics()).await.unwrap_or_default();
+    ([(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")], body)
 }
 
 async fn readyz(State(s): State<Arc<Served>>) -> impl IntoResponse {
@@ -70,6 +91,6 @@ async fn readyz(State(s): State<Arc<Served>>) -> impl IntoResponse {
 }
 
 async fn experiments(State(s): State<Arc<Served>>) -> impl IntoResponse {
-    let body = s.experiments.read().map(|g| g.clone()).unwrap_or_else(|_| "{}".into());
+    let body = tokio::task::spawn_blocking(move || s.experiments_json()).await.unwrap_or_default();
     ([(header::CONTENT_TYPE, "application/json")], body)
 }

@@ -1,0 +1,295 @@
+//! The per-experiment and per-arm figures this instance holds, kept as plain numbers and
+//! rendered only when asked for: as Prometheus text on `/metrics` and as JSON on `/experiments`.
+//!
+//! Ten thousand experiments of ten arms make 100 000 arms and, at seven series per arm, some
+//! 700 000 series. Kept as `prometheus` metric objects (each with its own label strings and
+//! atomics) they took about 700 MiB; kept here they take about 110 bytes per arm, and the
+//! pipeline touches them once per publish round instead of once per event.
+
+use std::collections::BTreeMap;
+use std::fmt::Write as _;
+
+use serde::ser::{Serialize, SerializeMap, Serializer};
+
+/// One arm's figures, as of the experiment's last publish round.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct ArmRow {
+    pub name: String,
+    pub pulls: u64,
+    pub reward: f64,
+    pub mean: f64,
+    pub ci_low: f64,
+    pub ci_high: f64,
+    /// Last published weight; `None` before the arm's first publish.
+    pub weight: Option<f64>,
+    pub undecided: bool,
+    pub last_pull_ms: Option<i64>,
+}
+
+/// One experiment's figures.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct ExperimentRow {
+    pub partition: i32,
+    pub policy: &'static str,
+    pub version: u64,
+    /// Index into `arms`.
+    pub leader: Option<usize>,
+    pub regret_estimate: f64,
+    /// 1 − the leader's weight, from the last publish.
+    pub exploration: Option<f64>,
+    pub published_ms: Option<i64>,
+    pub arms: Vec<ArmRow>,
+}
+
+/// Experiment id → its row.
+#[derive(Default)]
+pub struct Table {
+    pub rows: BTreeMap<String, ExperimentRow>,
+}
+
+type ArmValue = fn(&ArmRow) -> Option<f64>;
+type ExperimentValue = fn(&ExperimentRow) -> Option<f64>;
+
+/// Per-arm families: name, type, help, value (None: no sample).
+const ARM_FAMILIES: [(&str, &str, &str, ArmValue); 7] = [
+    ("apportion_arm_pulls_total", "counter", "Impressions applied to the arm", |a| Some(a.pulls as f64)),
+    ("apportion_arm_reward_total", "counter", "Reward applied to the arm, in reward units", |a| Some(a.reward)),
+    ("apportion_arm_mean", "gauge", "Estimated mean reward of the arm", |a| Some(a.mean)),
+    (
+        "apportion_arm_confidence_width",
+        "gauge",
+        "Width of the two-sided 95% interval on the arm's mean",
+        |a| Some(a.ci_high - a.ci_low),
+    ),
+    ("apportion_arm_weight_ratio", "gauge", "Traffic weight last published for the arm", |a| a.weight),
+    (
+        "apportion_arm_undecided",
+        "gauge",
+        "1 when the arm's interval still reaches the leader's lower bound",
+        |a| Some(if a.undecided { 1.0 } else { 0.0 }),
+    ),
+    (
+        "apportion_arm_last_pull_timestamp_seconds",
+        "gauge",
+        "Event time of the arm's newest impression",
+        |a| a.last_pull_ms.map(|t| t as f64 / 1000.0),
+    ),
+];
+
+/// Per-experiment families.
+const EXPERIMENT_FAMILIES: [(&str, &str, &str, ExperimentValue); 4] = [
+    (
+        "apportion_experiment_regret_estimate",
+        "gauge",
+        "Estimated cumulative pseudo-regret, in reward units",
+        |e| Some(e.regret_estimate),
+    ),
+    ("apportion_experiment_exploration_ratio", "gauge", "1 minus the leader's weight", |e| e.exploration),
+    (
+        "apportion_weights_version",
+        "gauge",
+        "Version of the experiment's last published weights",
+        |e| (e.version > 0).then_some(e.version as f64),
+    ),
+    (
+        "apportion_weights_published_timestamp_seconds",
+        "gauge",
+        "When the experiment's weights were last published",
+        |e| e.published_ms.map(|t| t as f64 / 1000.0),
+    ),
+];
+
+impl Table {
+    /// Appends every family in the Prometheus text format (version 0.0.4) to `out`.
+    pub fn write_prometheus(&self, out: &mut String) {
+        for (name, kind, help, value) in ARM_FAMILIES {
+            let _ = writeln!(out, "# HELP {name} {help}\n# TYPE {name} {kind}");
+            for (id, row) in &self.rows {
+                for arm in &row.arms {
+                    if let Some(v) = value(arm) {
+                        sample(out, name, &[("experiment", id), ("arm", &arm.name)], v);
+                    }
+                }
+            }
+        }
+        for (name, kind, help, value) in EXPERIMENT_FAMILIES {
+            let _ = writeln!(out, "# HELP {name} {help}\n# TYPE {name} {kind}");
+            for (id, row) in &self.rows {
+                if let Some(v) = value(row) {
+                    sample(out, name, &[("experiment", id)], v);
+                }
+            }
+        }
+    }
+
+    /// What `/experiments` shows, as JSON.
+    pub fn to_json(&self) -> String {
+        serde_json::to_string(self).unwrap_or_else(|_| "{}".into())
+    }
+}
+
+fn sample(out: &mut String, name: &str, labels: &[(&str, &str)], v: f64) {
+    out.push_str(name);
+    out.push('{');
+    for (i, (k, val)) in labels.iter().enumerate() {
+        if i > 0 {
+            out.push(',');
+        }
+        out.push_str(k);
+        out.push_str("=\"");
+        escape_label(out, val);
+        out.push('"');
+    }
+    out.push_str("} ");
+    push_float(out, v);
+    out.push('\n');
+}
+
+/// Label values escape backslash, double quote and line feed (text format 0.0.4).
+fn escape_label(out: &mut String, v: &str) {
+    for c in v.chars() {
+        match c {
+            '\\' => out.push_str("\\\\"),
+            '"' => out.push_str("\\\""),
+            '\n' => out.push_str("\\n"),
+            c => out.push(c),
+        }
+    }
+}
+
+/// Floats as the text format reads them: `NaN`, `+Inf`, `-Inf`, or a decimal/exponent form.
+fn push_float(out: &mut String, v: f64) {
+    if v.is_nan() {
+        out.push_str("NaN");
+    } else if v.is_infinite() {
+        out.push_str(if v > 0.0 { "+Inf" } else { "-Inf" });
+    } else if v == v.trunc() && v.abs() < 1e15 {
+        let _ = write!(out, "{}", v as i64);
+    } else {
+        let _ = write!(out, "{v:?}");
+    }
+}
+
+impl Serialize for Table {
+    fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        let mut m = s.serialize_map(Some(self.rows.len()))?;
+        for (id, row) in &self.rows {
+            m.serialize_entry(id, row)?;
+        }
+        m.end()
+    }
+}
+
+impl Serialize for ExperimentRow {
+    fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        struct Arms<'a>(&'a [ArmRow]);
+        impl Serialize for Arms<'_> {
+            fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+                let mut m = s.serialize_map(Some(self.0.len()))?;
+                for a in self.0 {
+                    m.serialize_entry(&a.name, &ArmJson(a))?;
+                }
+                m.end()
+            }
+        }
+        #[derive(serde::Serialize)]
+        struct View<'a> {
+            partition: i32,
+            policy: &'a str,
+            version: u64,
+            leader: Option<&'a str>,
+            regret_estimate: f64,
+            arms: Arms<'a>,
+        }
+        View {
+            partition: self.partition,
+            policy: self.policy,
+            version: self.version,
+            leader: self.leader.and_then(|l| self.arms.get(l)).map(|a| a.name.as_str()),
+            regret_estimate: self.regret_estimate,
+            arms: Arms(&self.arms),
+        }
+        .serialize(s)
+    }
+}
+
+struct ArmJson<'a>(&'a ArmRow);
+
+impl Serialize for ArmJson<'_> {
+    fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        let a = self.0;
+        let mut m = s.serialize_map(Some(7))?;
+        m.serialize_entry("pulls", &a.pulls)?;
+        m.serialize_entry("reward", &a.reward)?;
+        m.serialize_entry("mean", &a.mean)?;
+        m.serialize_entry("ci_low", &a.ci_low)?;
+        m.serialize_entry("ci_high", &a.ci_high)?;
+        m.serialize_entry("weight", &a.weight)?;
+        m.serialize_entry("undecided", &a.undecided)?;
+        m.end()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn table() -> Table {
+        let arm = |name: &str, pulls, weight| ArmRow {
+            name: name.into(),
+            pulls,
+            reward: 3.0,
+            mean: 0.25,
+            ci_low: 0.1,
+            ci_high: 0.4,
+            weight,
+            undecided: true,
+            last_pull_ms: Some(1_764_547_200_500),
+        };
+        let mut t = Table::default();
+        t.rows.insert(
+            "a\"b".into(),
+            ExperimentRow {
+                partition: 1,
+                policy: "thompson",
+                version: 3,
+                leader: Some(1),
+                regret_estimate: 1.5,
+                exploration: Some(0.4),
+                published_ms: Some(1_764_547_201_000),
+                arms: vec![arm("x", 12, Some(0.4)), arm("y\\z", 8, None)],
+            },
+        );
+        t
+    }
+
+    #[test]
+    fn prometheus_text_escapes_labels_and_skips_unknown_values() {
+        let mut out = String::new();
+        table().write_prometheus(&mut out);
+        assert!(out.contains("apportion_arm_pulls_total{experiment=\"a\\\"b\",arm=\"y\\\\z\"} 8\n"), "{out}");
+        assert!(out.contains("apportion_arm_weight_ratio{experiment=\"a\\\"b\",arm=\"x\"} 0.4\n"));
+        assert!(!out.contains("apportion_arm_weight_ratio{experiment=\"a\\\"b\",arm=\"y"), "no weight published yet: no sample");
+        assert!(out.contains("apportion_arm_last_pull_timestamp_seconds{experiment=\"a\\\"b\",arm=\"x\"} 1764547200.5\n"));
+        assert!(out.contains("apportion_weights_version{experiment=\"a\\\"b\"} 3\n"));
+        assert!(out.contains("# TYPE apportion_arm_pulls_total counter\n"));
+    }
+
+    #[test]
+    fn floats_are_written_as_the_text_format_reads_them() {
+        let mut out = String::new();
+        for v in [f64::NAN, f64::INFINITY, f64::NEG_INFINITY, 0.5, 3.0, 1e300, -2.5e-9] {
+            push_float(&mut out, v);
+            out.push(' ');
+        }
+        assert_eq!(out, "NaN +Inf -Inf 0.5 3 1e300 -2.5e-9 ");
+    }
+
+    #[test]
+    fn json_names_the_leader_and_every_arm() {
+        let v: serde_json::Value = serde_json::from_str(&table().to_json()).expect("JSON");
+        assert_eq!(v["a\"b"]["leader"], "y\\z");
+        assert_eq!(v["a\"b"]["arms"]["x"]["pulls"], 12);
+        assert_eq!(v["a\"b"]["arms"]["y\\z"]["weight"], serde_json::Value::Null);
+    }
+}
