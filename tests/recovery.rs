@@ -133,7 +133,11 @@ fn crashes_at_random_moments_lose_nothing_and_count_nothing_twice() {
         std::thread::sleep(Duration::from_millis(rng.gen_range(1500..4000)));
         sidecar.crash();
         sidecar = SidecarProcess::start(&cfg, cfg.port);
-        assert!(sidecar.wait_ready(Duration::from_secs(90)), "restart {k}");
+        // A killed member stays in the group until its session times out; tansu 0.6 then keeps
+        // the rebalance open until that member's rebalance timeout (max.poll.interval.ms,
+        // librdkafka's default 300 s) has passed, now and then. A delay, not a loss: the wait
+        // covers it, and the totals below are what the test is about.
+        assert!(sidecar.wait_ready(Duration::from_secs(330)), "restart {k}");
     }
     producer.join().expect("producer");
     let mut last = Totals::new();
