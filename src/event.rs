@@ -104,19 +104,57 @@ pub struct Event<'a> {
 
 #[derive(Deserialize)]
 struct Raw<'a> {
-    #[serde(borrow)]
+    #[serde(borrow, default, deserialize_with = "borrowed")]
     event_id: Option<Cow<'a, str>>,
-    #[serde(borrow)]
+    #[serde(borrow, default, deserialize_with = "borrowed")]
     kind: Option<Cow<'a, str>>,
-    #[serde(borrow)]
+    #[serde(borrow, default, deserialize_with = "borrowed")]
     experiment: Option<Cow<'a, str>>,
-    #[serde(borrow)]
+    #[serde(borrow, default, deserialize_with = "borrowed")]
     arm: Option<Cow<'a, str>>,
     ts_ms: Option<i64>,
     count: Option<u64>,
     reward: Option<f64>,
     propensity: Option<f64>,
     weights_version: Option<u64>,
+}
+
+/// An optional string borrowed from the message when it has no escapes. (serde's own
+/// `Option<Cow<str>>` always copies, which cost four allocations per event.)
+fn borrowed<'de, D: serde::Deserializer<'de>>(d: D) -> Result<Option<Cow<'de, str>>, D::Error> {
+    struct Text;
+    impl<'de> serde::de::Visitor<'de> for Text {
+        type Value = Cow<'de, str>;
+        fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
+            f.write_str("a string")
+        }
+        fn visit_borrowed_str<E>(self, v: &'de str) -> Result<Self::Value, E> {
+            Ok(Cow::Borrowed(v))
+        }
+        fn visit_str<E>(self, v: &str) -> Result<Self::Value, E> {
+            Ok(Cow::Owned(v.to_owned()))
+        }
+        fn visit_string<E>(self, v: String) -> Result<Self::Value, E> {
+            Ok(Cow::Owned(v))
+        }
+    }
+    struct Maybe;
+    impl<'de> serde::de::Visitor<'de> for Maybe {
+        type Value = Option<Cow<'de, str>>;
+        fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
+            f.write_str("a string or null")
+        }
+        fn visit_none<E>(self) -> Result<Self::Value, E> {
+            Ok(None)
+        }
+        fn visit_unit<E>(self) -> Result<Self::Value, E> {
+            Ok(None)
+        }
+        fn visit_some<D: serde::Deserializer<'de>>(self, d: D) -> Result<Self::Value, D::Error> {
+            d.deserialize_str(Text).map(Some)
+        }
+    }
+    d.deserialize_option(Maybe)
 }
 
 /// `[A-Za-z0-9._-]{1,64}`: experiment and arm names.
@@ -244,5 +282,23 @@ mod tests {
             assert_eq!(check(&input).map(|_| ()), Err(reason), "{input}");
         }
         assert_eq!(decode(&[b' '; 5000], 4096, NOW, 0).map(|_| ()), Err(Reason::TooLarge));
+    }
+}
+
+#[cfg(test)]
+mod borrowing {
+    use super::*;
+
+    #[test]
+    fn ids_without_escapes_are_borrowed_and_escaped_ones_still_decode() {
+        let plain = br#"{"event_id":"imp-1","kind":"impression","experiment":"thumb-style","arm":"warm","ts_ms":1}"#;
+        let e = decode(plain, 16_384, 10, 0).expect("decodes");
+        assert!(matches!((&e.event_id, &e.experiment, &e.arm), (Cow::Borrowed(_), Cow::Borrowed(_), Cow::Borrowed(_))));
+        let escaped = br#"{"event_id":"imp-\u0032","kind":"impression","experiment":"thumb-style","arm":"warm","ts_ms":1}"#;
+        assert_eq!(decode(escaped, 16_384, 10, 0).expect("decodes").event_id, "imp-2");
+        let null_id = br#"{"event_id":null,"kind":"impression","experiment":"x","arm":"y","ts_ms":1}"#;
+        assert_eq!(decode(null_id, 16_384, 10, 0).err(), Some(Reason::MissingField));
+        let number_id = br#"{"event_id":7,"kind":"impression","experiment":"x","arm":"y","ts_ms":1}"#;
+        assert_eq!(decode(number_id, 16_384, 10, 0).err(), Some(Reason::WrongType));
     }
 }
