@@ -15,7 +15,7 @@ use rustc_hash::FxHashMap;
 
 use super::dedup::DedupWindow;
 use super::publish::WeightsMessage;
-use super::snapshot::{self, Counters, Pointer, Snapshot, Stored};
+use super::snapshot::{self, Counters, Pointer, Snapshot, SnapshotOut, Stored};
 use crate::config::{Config, ResolvedExperiment};
 use crate::core::{Experiment, ExperimentSpec, Observation, Refusal};
 use crate::event::{self, Kind, Reason};
@@ -148,6 +148,20 @@ impl PartitionState {
             }
         }
         c
+    }
+}
+
+/// Every experiment's state, serialised one experiment at a time.
+struct States<'a>(&'a FxHashMap<String, Entry>);
+
+impl serde::Serialize for States<'_> {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        use serde::ser::SerializeMap;
+        let mut m = s.serialize_map(Some(self.0.len()))?;
+        for (id, e) in self.0 {
+            m.serialize_entry(id, &e.exp.state())?;
+        }
+        m.end()
     }
 }
 
@@ -447,16 +461,18 @@ impl Pipeline {
         for &p in partitions {
             let Some(part) = self.partitions.get_mut(&p) else { continue };
             part.generation += 1;
-            let snap = Snapshot {
+            let duplicates = part.dedup.ids();
+            let counters = part.counters_for_snapshot();
+            let snap = SnapshotOut {
                 format: snapshot::FORMAT,
-                topic: self.ctx.s.input_topic.clone(),
+                topic: &self.ctx.s.input_topic,
                 partition: p,
                 next_offset: part.next_offset,
                 generation: part.generation,
                 written_at_ms,
-                experiments: part.experiments.iter().map(|(k, e)| (k.clone(), e.exp.state())).collect(),
-                duplicates: part.dedup.ids(),
-                counters: part.counters_for_snapshot(),
+                experiments: States(&part.experiments),
+                duplicates: &duplicates,
+                counters: &counters,
             };
             let bytes = match snap.encode() {
                 Ok(b) => b,
