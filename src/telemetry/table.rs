@@ -42,7 +42,7 @@ pub struct ExperimentRow {
 }
 
 /// Experiment id → its row.
-#[derive(Default)]
+#[derive(Clone, Default)]
 pub struct Table {
     pub rows: BTreeMap<String, ExperimentRow>,
 }
@@ -102,6 +102,14 @@ const EXPERIMENT_FAMILIES: [(&str, &str, &str, ExperimentValue); 4] = [
 impl Table {
     /// Appends every family in the Prometheus text format (version 0.0.4) to `out`.
     pub fn write_prometheus(&self, out: &mut String) {
+        self.write_prometheus_chunked(out, usize::MAX, &mut |_| true);
+    }
+
+    /// As [`Table::write_prometheus`], handing `out` to `flush` whenever it holds `chunk` bytes
+    /// or more (and once at the end), so that the text is never whole in memory. Stops early
+    /// when `flush` returns false (the client went away).
+    pub fn write_prometheus_chunked(&self, out: &mut String, chunk: usize, flush: &mut dyn FnMut(&mut String) -> bool) {
+        let mut full = |out: &mut String| out.len() < chunk || flush(out);
         for (name, kind, help, value) in ARM_FAMILIES {
             let _ = writeln!(out, "# HELP {name} {help}\n# TYPE {name} {kind}");
             for (id, row) in &self.rows {
@@ -109,6 +117,9 @@ impl Table {
                     if let Some(v) = value(arm) {
                         sample(out, name, &[("experiment", id), ("arm", &arm.name)], v);
                     }
+                }
+                if !full(out) {
+                    return;
                 }
             }
         }
@@ -118,7 +129,13 @@ impl Table {
                 if let Some(v) = value(row) {
                     sample(out, name, &[("experiment", id)], v);
                 }
+                if !full(out) {
+                    return;
+                }
             }
+        }
+        if !out.is_empty() && chunk != usize::MAX {
+            flush(out);
         }
     }
 
@@ -273,6 +290,29 @@ mod tests {
         assert!(out.contains("apportion_arm_last_pull_timestamp_seconds{experiment=\"a\\\"b\",arm=\"x\"} 1764547200.5\n"));
         assert!(out.contains("apportion_weights_version{experiment=\"a\\\"b\"} 3\n"));
         assert!(out.contains("# TYPE apportion_arm_pulls_total counter\n"));
+    }
+
+    #[test]
+    fn chunked_text_is_the_same_text() {
+        let mut t = table();
+        for i in 0..50 {
+            let mut r = t.rows["a\"b"].clone();
+            r.arms[0].pulls = i;
+            t.rows.insert(format!("exp-{i}"), r);
+        }
+        let mut whole = String::new();
+        t.write_prometheus(&mut whole);
+        let mut joined = String::new();
+        let mut chunks = 0;
+        let mut buf = String::new();
+        t.write_prometheus_chunked(&mut buf, 1_000, &mut |c| {
+            chunks += 1;
+            joined.push_str(c);
+            c.clear();
+            true
+        });
+        assert_eq!(joined, whole);
+        assert!(chunks > 10, "{chunks} chunks");
     }
 
     #[test]
