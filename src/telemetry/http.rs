@@ -10,7 +10,7 @@ use axum::response::IntoResponse;
 use axum::routing::get;
 use axum::Router;
 
-use super::table::Table;
+use super::table::{self, Table};
 use super::Metrics;
 use crate::shutdown::Shutdown;
 
@@ -37,18 +37,34 @@ impl Served {
     }
 
     /// The `/metrics` text in chunks of about `chunk` bytes, each handed to `send` (false: stop).
-    /// The table is copied first (about 110 bytes per arm) so that a slow scraper never holds
-    /// the lock the pipeline writes under.
+    /// The table's read lock is taken for one chunk at a time, so neither a copy of the table
+    /// nor the whole text is ever held, and a slow scraper never holds up the pipeline. A
+    /// scrape is therefore not one instant: an experiment that changes during it may show
+    /// figures of two publish rounds in different families.
     pub fn stream_metrics(&self, chunk: usize, send: &mut dyn FnMut(String) -> bool) {
-        let table = match self.table.read() {
-            Ok(t) => t.clone(),
-            Err(p) => p.into_inner().clone(),
-        };
         if !send(self.metrics.encode()) {
             return;
         }
         let mut buf = String::with_capacity(chunk + 4096);
-        table.write_prometheus_chunked(&mut buf, chunk, &mut |out| send(std::mem::replace(out, String::with_capacity(chunk + 4096))));
+        for f in 0..table::FAMILIES {
+            let mut after: Option<String> = None;
+            loop {
+                let next = {
+                    let t = self.table.read().unwrap_or_else(|p| p.into_inner());
+                    t.write_family(f, after.as_deref(), &mut buf, chunk)
+                };
+                if buf.len() >= chunk && !send(std::mem::replace(&mut buf, String::with_capacity(chunk + 4096))) {
+                    return;
+                }
+                match next {
+                    Some(k) => after = Some(k),
+                    None => break,
+                }
+            }
+        }
+        if !buf.is_empty() {
+            send(buf);
+        }
     }
 
     /// The `/experiments` JSON.

@@ -42,7 +42,7 @@ pub struct ExperimentRow {
 }
 
 /// Experiment id → its row.
-#[derive(Clone, Default)]
+#[derive(Default)]
 pub struct Table {
     pub rows: BTreeMap<String, ExperimentRow>,
 }
@@ -76,6 +76,9 @@ const ARM_FAMILIES: [(&str, &str, &str, ArmValue); 7] = [
     ),
 ];
 
+/// How many families [`Table::write_family`] writes.
+pub const FAMILIES: usize = ARM_FAMILIES.len() + EXPERIMENT_FAMILIES.len();
+
 /// Per-experiment families.
 const EXPERIMENT_FAMILIES: [(&str, &str, &str, ExperimentValue); 4] = [
     (
@@ -102,41 +105,50 @@ const EXPERIMENT_FAMILIES: [(&str, &str, &str, ExperimentValue); 4] = [
 impl Table {
     /// Appends every family in the Prometheus text format (version 0.0.4) to `out`.
     pub fn write_prometheus(&self, out: &mut String) {
-        self.write_prometheus_chunked(out, usize::MAX, &mut |_| true);
+        for f in 0..FAMILIES {
+            let mut after = None;
+            while let Some(last) = self.write_family(f, after.as_deref(), out, usize::MAX) {
+                after = Some(last);
+            }
+        }
     }
 
-    /// As [`Table::write_prometheus`], handing `out` to `flush` whenever it holds `chunk` bytes
-    /// or more (and once at the end), so that the text is never whole in memory. Stops early
-    /// when `flush` returns false (the client went away).
-    pub fn write_prometheus_chunked(&self, out: &mut String, chunk: usize, flush: &mut dyn FnMut(&mut String) -> bool) {
-        let mut full = |out: &mut String| out.len() < chunk || flush(out);
-        for (name, kind, help, value) in ARM_FAMILIES {
-            let _ = writeln!(out, "# HELP {name} {help}\n# TYPE {name} {kind}");
-            for (id, row) in &self.rows {
+    /// Writes part of family `f` (0..FAMILIES): its header when `after` is `None`, then the
+    /// samples of the experiments after `after`, until `out` holds `limit` bytes. Returns the
+    /// last experiment written if more remain, `None` once the family is complete. Lets the
+    /// HTTP side write a large scrape piece by piece, taking the lock for one piece at a time.
+    pub fn write_family(&self, f: usize, after: Option<&str>, out: &mut String, limit: usize) -> Option<String> {
+        use std::ops::Bound::{Excluded, Unbounded};
+        let (name, kind, help) = if f < ARM_FAMILIES.len() {
+            let (n, k, h, _) = ARM_FAMILIES[f];
+            (n, k, h)
+        } else {
+            let (n, k, h, _) = EXPERIMENT_FAMILIES[f - ARM_FAMILIES.len()];
+            (n, k, h)
+        };
+        let rows = match after {
+            None => {
+                let _ = writeln!(out, "# HELP {name} {help}\n# TYPE {name} {kind}");
+                self.rows.range::<str, _>((Unbounded, Unbounded))
+            }
+            Some(k) => self.rows.range::<str, _>((Excluded(k), Unbounded)),
+        };
+        for (id, row) in rows {
+            if f < ARM_FAMILIES.len() {
+                let value = ARM_FAMILIES[f].3;
                 for arm in &row.arms {
                     if let Some(v) = value(arm) {
                         sample(out, name, &[("experiment", id), ("arm", &arm.name)], v);
                     }
                 }
-                if !full(out) {
-                    return;
-                }
+            } else if let Some(v) = (EXPERIMENT_FAMILIES[f - ARM_FAMILIES.len()].3)(row) {
+                sample(out, name, &[("experiment", id)], v);
+            }
+            if out.len() >= limit {
+                return Some(id.clone());
             }
         }
-        for (name, kind, help, value) in EXPERIMENT_FAMILIES {
-            let _ = writeln!(out, "# HELP {name} {help}\n# TYPE {name} {kind}");
-            for (id, row) in &self.rows {
-                if let Some(v) = value(row) {
-                    sample(out, name, &[("experiment", id)], v);
-                }
-                if !full(out) {
-                    return;
-                }
-            }
-        }
-        if !out.is_empty() && chunk != usize::MAX {
-            flush(out);
-        }
+        None
     }
 
     /// What `/experiments` shows, as JSON.
@@ -293,7 +305,7 @@ mod tests {
     }
 
     #[test]
-    fn chunked_text_is_the_same_text() {
+    fn text_written_piece_by_piece_is_the_same_text() {
         let mut t = table();
         for i in 0..50 {
             let mut r = t.rows["a\"b"].clone();
@@ -302,17 +314,22 @@ mod tests {
         }
         let mut whole = String::new();
         t.write_prometheus(&mut whole);
-        let mut joined = String::new();
-        let mut chunks = 0;
-        let mut buf = String::new();
-        t.write_prometheus_chunked(&mut buf, 1_000, &mut |c| {
-            chunks += 1;
-            joined.push_str(c);
-            c.clear();
-            true
-        });
+        let (mut joined, mut pieces) = (String::new(), 0);
+        for f in 0..FAMILIES {
+            let mut after = None;
+            loop {
+                let mut piece = String::new();
+                let next = t.write_family(f, after.as_deref(), &mut piece, 1_000);
+                joined.push_str(&piece);
+                pieces += 1;
+                match next {
+                    Some(k) => after = Some(k),
+                    None => break,
+                }
+            }
+        }
         assert_eq!(joined, whole);
-        assert!(chunks > 10, "{chunks} chunks");
+        assert!(pieces > 2 * FAMILIES, "{pieces} pieces");
     }
 
     #[test]
