@@ -7,6 +7,10 @@ use std::borrow::Cow;
 
 use serde::Deserialize;
 
+mod scan;
+#[doc(hidden)]
+pub use scan::fast_path_agrees;
+
 /// Why an event was rejected. The codes are part of the contract (dead-letter header, metric
 /// label); keep them stable.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, PartialOrd, Ord)]
@@ -102,7 +106,7 @@ pub struct Event<'a> {
     pub weights_version: Option<u64>,
 }
 
-#[derive(Deserialize)]
+#[derive(Debug, Default, Deserialize, PartialEq)]
 struct Raw<'a> {
     #[serde(borrow, default, deserialize_with = "borrowed")]
     event_id: Option<Cow<'a, str>>,
@@ -168,7 +172,11 @@ pub fn decode(bytes: &[u8], max_bytes: usize, now_ms: i64, max_skew_ms: i64) -> 
     if bytes.len() > max_bytes {
         return Err(Reason::TooLarge);
     }
-    let raw: Raw = serde_json::from_slice(bytes).map_err(|e| {
+    let parsed = match scan::scan(bytes) {
+        Some(raw) => Ok(raw),
+        None => serde_json::from_slice(bytes),
+    };
+    let raw: Raw = parsed.map_err(|e| {
         use serde_json::error::Category;
         match e.classify() {
             Category::Data => {

@@ -54,6 +54,10 @@ fn runner(cases: u32) -> TestRunner {
 
 /// What must hold of every decoding outcome, whatever the input.
 fn decode_holds_its_contract(bytes: &[u8]) -> Result<(), TestCaseError> {
+    // The fast path for plain events reads exactly what serde_json reads, or leaves the bytes to it.
+    if let Err(e) = event::fast_path_agrees(bytes) {
+        return Err(TestCaseError::fail(format!("{e}: {:?}", String::from_utf8_lossy(bytes))));
+    }
     let first = event::decode(bytes, MAX_BYTES, NOW, SKEW_MS);
     let again = event::decode(bytes, MAX_BYTES, NOW, SKEW_MS);
     prop_assert_eq!(&first, &again, "decoding is deterministic");
@@ -212,6 +216,45 @@ fn event_decoding_takes_arbitrary_bytes_without_panicking() {
     runner(2_000)
         .run(&"\\PC{0,400}", |text| decode_holds_its_contract(text.as_bytes()))
         .unwrap();
+}
+
+/// Events of the plain shape the fast path takes, with the freedom JSON allows (field order,
+/// whitespace, nulls, integers of any size and sign, non-ASCII text): the fast path and
+/// serde_json must read each the same, and most must take the fast path.
+#[test]
+fn the_fast_path_reads_plain_events_as_serde_json_does() {
+    let ws = prop::sample::select(vec!["", " ", "\n", "\t ", "\r\n  "]);
+    let string = prop_oneof![Just("null".to_string()), "[a-zA-Z0-9 ._\\-é€😀]{0,12}".prop_map(|s| quoted(&s))];
+    let integer = prop_oneof![
+        any::<i64>().prop_map(|v| v.to_string()),
+        any::<u64>().prop_map(|v| v.to_string()),
+        (-1_000i64..1_000).prop_map(|v| v.to_string()),
+        Just("null".to_string()),
+        Just("-0".to_string()),
+    ];
+    let field = (0usize..9, string, integer);
+    let strategy = (prop::collection::vec((field, ws.clone(), ws.clone()), 0..9), ws);
+    let taken = std::cell::Cell::new(0u32);
+    runner(2_000)
+        .run(&strategy, |(fields, tail)| {
+            let names = ["event_id", "kind", "experiment", "arm", "ts_ms", "count", "reward", "propensity", "weights_version"];
+            let body: Vec<String> = fields
+                .iter()
+                .map(|((f, text, number), before, after)| {
+                    let v = if *f < 4 { text } else { number };
+                    format!("{before}\"{}\"{after}:{before}{v}{after}", names[*f])
+                })
+                .collect();
+            let bytes = format!("{tail}{{{}}}{tail}", body.join(",")).into_bytes();
+            match event::fast_path_agrees(&bytes) {
+                Ok(true) => taken.set(taken.get() + 1),
+                Ok(false) => {}
+                Err(e) => return Err(TestCaseError::fail(format!("{e}: {}", String::from_utf8_lossy(&bytes)))),
+            }
+            decode_holds_its_contract(&bytes)
+        })
+        .unwrap();
+    assert!(taken.get() > 200, "only {} of 2 000 generated events took the fast path", taken.get());
 }
 
 #[test]

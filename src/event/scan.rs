@@ -1,0 +1,236 @@
+//! A fast path for the common shape of an event: one flat JSON object whose keys are the
+//! event's own fields, whose strings have no escapes and whose numbers are plain integers.
+//! Anything else (escapes, fractions, exponents, unknown or repeated keys, nesting, odd
+//! whitespace placement is fine) makes it give up, and the caller decodes with `serde_json`.
+//!
+//! It must never accept what `serde_json` would read differently: `tests/hostile.rs` checks
+//! the two against each other on arbitrary, mutated and corpus bytes
+//! ([`fast_path_agrees`]).
+
+use std::borrow::Cow;
+
+use super::Raw;
+
+/// The fields of `bytes` if it has the common shape; `None` to fall back to `serde_json`.
+pub(super) fn scan(bytes: &[u8]) -> Option<Raw<'_>> {
+    let mut s = Scanner { b: bytes, i: 0 };
+    let mut raw = Raw::default();
+    let mut seen = 0u16;
+    s.ws();
+    s.expect(b'{')?;
+    s.ws();
+    if s.peek() == Some(b'}') {
+        s.i += 1;
+    } else {
+        loop {
+            let key = s.plain_string()?;
+            s.ws();
+            s.expect(b':')?;
+            s.ws();
+            let field = match key {
+                "event_id" => 0,
+                "kind" => 1,
+                "experiment" => 2,
+                "arm" => 3,
+                "ts_ms" => 4,
+                "count" => 5,
+                "reward" => 6,
+                "propensity" => 7,
+                "weights_version" => 8,
+                _ => return None,
+            };
+            if seen & (1 << field) != 0 {
+                return None;
+            }
+            seen |= 1 << field;
+            match field {
+                0..=3 => {
+                    let v = if s.null() { None } else { Some(Cow::Borrowed(s.plain_string()?)) };
+                    match field {
+                        0 => raw.event_id = v,
+                        1 => raw.kind = v,
+                        2 => raw.experiment = v,
+                        _ => raw.arm = v,
+                    }
+                }
+                4 => raw.ts_ms = if s.null() { None } else { Some(s.integer()?) },
+                5 | 8 => {
+                    let v = if s.null() {
+                        None
+                    } else {
+                        Some(u64::try_from(s.integer()?).ok()?)
+                    };
+                    if field == 5 {
+                        raw.count = v;
+                    } else {
+                        raw.weights_version = v;
+                    }
+                }
+                _ => {
+                    let v = if s.null() { None } else { Some(s.small_integer_as_float()?) };
+                    if field == 6 {
+                        raw.reward = v;
+                    } else {
+                        raw.propensity = v;
+                    }
+                }
+            }
+            s.ws();
+            match s.next()? {
+                b',' => s.ws(),
+                b'}' => break,
+                _ => return None,
+            }
+        }
+    }
+    s.ws();
+    (s.i == bytes.len()).then_some(raw)
+}
+
+/// For tests: `Ok(true)` when the fast path took `bytes` and read exactly what `serde_json`
+/// reads, `Ok(false)` when it left them to `serde_json`, `Err` when the two disagree.
+#[doc(hidden)]
+pub fn fast_path_agrees(bytes: &[u8]) -> Result<bool, String> {
+    let Some(fast) = scan(bytes) else { return Ok(false) };
+    match serde_json::from_slice::<Raw<'_>>(bytes) {
+        Ok(reference) if reference == fast => Ok(true),
+        Ok(reference) => Err(format!("fast path read {fast:?}, serde_json {reference:?}")),
+        Err(e) => Err(format!("fast path read {fast:?}, serde_json refused: {e}")),
+    }
+}
+
+struct Scanner<'a> {
+    b: &'a [u8],
+    i: usize,
+}
+
+impl<'a> Scanner<'a> {
+    fn peek(&self) -> Option<u8> {
+        self.b.get(self.i).copied()
+    }
+
+    fn next(&mut self) -> Option<u8> {
+        let c = self.peek()?;
+        self.i += 1;
+        Some(c)
+    }
+
+    fn expect(&mut self, c: u8) -> Option<()> {
+        (self.next()? == c).then_some(())
+    }
+
+    /// JSON whitespace: space, tab, line feed, carriage return.
+    fn ws(&mut self) {
+        while matches!(self.peek(), Some(b' ' | b'\t' | b'\n' | b'\r')) {
+            self.i += 1;
+        }
+    }
+
+    fn null(&mut self) -> bool {
+        if self.b[self.i..].starts_with(b"null") {
+            self.i += 4;
+            true
+        } else {
+            false
+        }
+    }
+
+    /// A string without escapes or control characters, borrowed; valid UTF-8 only.
+    fn plain_string(&mut self) -> Option<&'a str> {
+        self.expect(b'"')?;
+        let start = self.i;
+        loop {
+            match self.next()? {
+                b'"' => break,
+                b'\\' => return None,
+                c if c < 0x20 => return None,
+                _ => {}
+            }
+        }
+        std::str::from_utf8(&self.b[start..self.i - 1]).ok()
+    }
+
+    /// `-?(0|[1-9][0-9]*)` that fits an i64, not followed by a fraction or an exponent:
+    /// (negative, value, digits).
+    fn number(&mut self) -> Option<(bool, i64, usize)> {
+        let negative = self.peek() == Some(b'-');
+        if negative {
+            self.i += 1;
+        }
+        let start = self.i;
+        let mut v: i64 = 0;
+        while let Some(d @ b'0'..=b'9') = self.peek() {
+            let d = i64::from(d - b'0');
+            v = v.checked_mul(10)?;
+            v = if negative { v.checked_sub(d)? } else { v.checked_add(d)? };
+            self.i += 1;
+        }
+        let digits = self.i - start;
+        if digits == 0 || (digits > 1 && self.b[start] == b'0') {
+            return None;
+        }
+        if matches!(self.peek(), Some(b'.' | b'e' | b'E')) {
+            return None;
+        }
+        Some((negative, v, digits))
+    }
+
+    /// An integer field. `-0` is left to serde_json, which reads it as a float.
+    fn integer(&mut self) -> Option<i64> {
+        match self.number()? {
+            (true, 0, _) => None,
+            (_, v, _) => Some(v),
+        }
+    }
+
+    /// An integer of at most 15 digits (exact as an f64) for a float field; `-0` is -0.0.
+    fn small_integer_as_float(&mut self) -> Option<f64> {
+        let (negative, v, digits) = self.number()?;
+        if digits > 15 {
+            return None;
+        }
+        Some(if negative && v == 0 { -0.0 } else { v as f64 })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn plain_events_take_the_fast_path_and_read_as_serde_json_reads_them() {
+        for plain in [
+            r#"{"event_id":"imp-1","kind":"impression","experiment":"thumb-style","arm":"warm","ts_ms":1764547200000}"#,
+            r#" { "event_id" : "r-1" , "kind":"reward","experiment":"x","arm":"y","ts_ms":-5,"reward":1 } "#,
+            r#"{"event_id":"i","kind":"impression","experiment":"x","arm":"y","ts_ms":0,"count":3,"weights_version":17,"propensity":1}"#,
+            r#"{"event_id":null,"kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":-0}"#,
+            r#"{}"#,
+            "{\"event_id\":\"caf\u{e9}\",\"kind\":\"impression\",\"experiment\":\"x\",\"arm\":\"y\",\"ts_ms\":9223372036854775807}",
+        ] {
+            assert_eq!(fast_path_agrees(plain.as_bytes()), Ok(true), "{plain}");
+        }
+    }
+
+    #[test]
+    fn anything_unusual_is_left_to_serde_json() {
+        for odd in [
+            r#"{"event_id":"a\"b","kind":"impression","experiment":"x","arm":"y","ts_ms":1}"#,
+            r#"{"event_id":"a","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":0.5}"#,
+            r#"{"event_id":"a","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":1e0}"#,
+            r#"{"event_id":"a","kind":"impression","experiment":"x","arm":"y","ts_ms":-0}"#,
+            r#"{"event_id":"a","kind":"impression","experiment":"x","arm":"y","ts_ms":01}"#,
+            r#"{"event_id":"a","kind":"impression","experiment":"x","arm":"y","ts_ms":-9223372036854775809}"#,
+            r#"{"event_id":"a","kind":"impression","experiment":"x","arm":"y","ts_ms":1,"count":-1}"#,
+            r#"{"event_id":"a","event_id":"b","kind":"impression","experiment":"x","arm":"y","ts_ms":1}"#,
+            r#"{"event_id":"a","kind":"impression","experiment":"x","arm":"y","ts_ms":1,"note":"hi"}"#,
+            r#"{"event_id":"a","kind":"impression","experiment":"x","arm":"y","ts_ms":1}x"#,
+            r#"{"event_id":"a","kind":"impression","experiment":"x","arm":"y","ts_ms":1,}"#,
+            r#"{"event_id":"a	b","kind":"impression","experiment":"x","arm":"y","ts_ms":1}"#,
+            r#"[1]"#,
+            r#"{"event_id":"a","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":1234567890123456}"#,
+        ] {
+            assert_eq!(fast_path_agrees(odd.as_bytes()), Ok(false), "{odd}");
+        }
+        assert_eq!(fast_path_agrees(b"{\"event_id\":\"\xff\",\"ts_ms\":1}"), Ok(false), "invalid UTF-8");
+    }
+}
