@@ -231,6 +231,9 @@ fn the_fast_path_reads_plain_events_as_serde_json_does() {
         (-1_000i64..1_000).prop_map(|v| v.to_string()),
         Just("null".to_string()),
         Just("-0".to_string()),
+        (any::<u32>(), 0u32..1_000_000, 0usize..9).prop_map(|(i, f, pad)| format!("{i}.{}{f}", "0".repeat(pad))),
+        any::<f64>().prop_map(|v| if v.is_finite() { format!("{v}") } else { "0.5".to_string() }),
+        (-1e6f64..1e6).prop_map(|v| format!("{v:.6}")),
     ];
     let field = (0usize..9, string, integer);
     let strategy = (prop::collection::vec((field, ws.clone(), ws.clone()), 0..9), ws);

@@ -1,5 +1,6 @@
 //! A fast path for the common shape of an event: one flat JSON object whose keys are the
-//! event's own fields, whose strings have no escapes and whose numbers are plain integers.
+//! event's own fields, whose strings have no escapes and whose numbers are plain integers (or,
+//! for reward and propensity, plain decimals of up to 15 digits).
 //! Anything else (escapes, fractions, exponents, unknown or repeated keys, nesting, odd
 //! whitespace placement is fine) makes it give up, and the caller decodes with `serde_json`.
 //!
@@ -67,7 +68,7 @@ pub(super) fn scan(bytes: &[u8]) -> Option<Raw<'_>> {
                     }
                 }
                 _ => {
-                    let v = if s.null() { None } else { Some(s.small_integer_as_float()?) };
+                    let v = if s.null() { None } else { Some(s.plain_float()?) };
                     if field == 6 {
                         raw.reward = v;
                     } else {
@@ -183,13 +184,51 @@ impl<'a> Scanner<'a> {
         }
     }
 
-    /// An integer of at most 15 digits (exact as an f64) for a float field; `-0` is -0.0.
-    fn small_integer_as_float(&mut self) -> Option<f64> {
-        let (negative, v, digits) = self.number()?;
-        if digits > 15 {
+    /// A float field written `-?(0|[1-9][0-9]*)(\.[0-9]+)?` with at most 15 digits in all:
+    /// the digits make an integer below 2^53 and the fraction a power of ten up to 10^15, both
+    /// exact as f64, so one division gives the correctly rounded value — what serde_json and
+    /// the standard library both give. Exponents are left to serde_json.
+    fn plain_float(&mut self) -> Option<f64> {
+        const POW10: [f64; 16] = [1e0, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8, 1e9, 1e10, 1e11, 1e12, 1e13, 1e14, 1e15];
+        let negative = self.peek() == Some(b'-');
+        if negative {
+            self.i += 1;
+        }
+        let start = self.i;
+        let mut sig: u64 = 0;
+        let mut digits = 0usize;
+        let mut fraction = 0usize;
+        while let Some(d @ b'0'..=b'9') = self.peek() {
+            sig = sig * 10 + u64::from(d - b'0');
+            digits += 1;
+            self.i += 1;
+            if digits > 15 {
+                return None;
+            }
+        }
+        if digits == 0 || (digits > 1 && self.b[start] == b'0') {
             return None;
         }
-        Some(if negative && v == 0 { -0.0 } else { v as f64 })
+        if self.peek() == Some(b'.') {
+            self.i += 1;
+            while let Some(d @ b'0'..=b'9') = self.peek() {
+                sig = sig * 10 + u64::from(d - b'0');
+                digits += 1;
+                fraction += 1;
+                self.i += 1;
+                if digits > 15 {
+                    return None;
+                }
+            }
+            if fraction == 0 {
+                return None;
+            }
+        }
+        if matches!(self.peek(), Some(b'e' | b'E' | b'.')) {
+            return None;
+        }
+        let v = sig as f64 / POW10[fraction];
+        Some(if negative { -v } else { v })
     }
 }
 
@@ -205,6 +244,10 @@ mod tests {
             r#"{"event_id":"i","kind":"impression","experiment":"x","arm":"y","ts_ms":0,"count":3,"weights_version":17,"propensity":1}"#,
             r#"{"event_id":null,"kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":-0}"#,
             r#"{}"#,
+            r#"{"event_id":"p","kind":"impression","experiment":"x","arm":"y","ts_ms":1,"propensity":0.3333}"#,
+            r#"{"event_id":"r","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":1.0}"#,
+            r#"{"event_id":"r","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":-0.00000000000001}"#,
+            r#"{"event_id":"r","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":123456789.012345}"#,
             "{\"event_id\":\"caf\u{e9}\",\"kind\":\"impression\",\"experiment\":\"x\",\"arm\":\"y\",\"ts_ms\":9223372036854775807}",
         ] {
             assert_eq!(fast_path_agrees(plain.as_bytes()), Ok(true), "{plain}");
@@ -215,7 +258,6 @@ mod tests {
     fn anything_unusual_is_left_to_serde_json() {
         for odd in [
             r#"{"event_id":"a\"b","kind":"impression","experiment":"x","arm":"y","ts_ms":1}"#,
-            r#"{"event_id":"a","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":0.5}"#,
             r#"{"event_id":"a","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":1e0}"#,
             r#"{"event_id":"a","kind":"impression","experiment":"x","arm":"y","ts_ms":-0}"#,
             r#"{"event_id":"a","kind":"impression","experiment":"x","arm":"y","ts_ms":01}"#,
@@ -228,6 +270,9 @@ mod tests {
             r#"{"event_id":"a	b","kind":"impression","experiment":"x","arm":"y","ts_ms":1}"#,
             r#"[1]"#,
             r#"{"event_id":"a","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":1234567890123456}"#,
+            r#"{"event_id":"a","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":0.1234567890123456}"#,
+            r#"{"event_id":"a","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":1.}"#,
+            r#"{"event_id":"a","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":.5}"#,
         ] {
             assert_eq!(fast_path_agrees(odd.as_bytes()), Ok(false), "{odd}");
         }
