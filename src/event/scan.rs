@@ -24,20 +24,20 @@ pub(super) fn scan(bytes: &[u8]) -> Option<Raw<'_>> {
         s.i += 1;
     } else {
         loop {
-            let key = s.plain_string()?;
+            let key = s.plain_bytes()?;
             s.ws();
             s.expect(b':')?;
             s.ws();
             let field = match key {
-                "event_id" => 0,
-                "kind" => 1,
-                "experiment" => 2,
-                "arm" => 3,
-                "ts_ms" => 4,
-                "count" => 5,
-                "reward" => 6,
-                "propensity" => 7,
-                "weights_version" => 8,
+                b"event_id" => 0,
+                b"kind" => 1,
+                b"experiment" => 2,
+                b"arm" => 3,
+                b"ts_ms" => 4,
+                b"count" => 5,
+                b"reward" => 6,
+                b"propensity" => 7,
+                b"weights_version" => 8,
                 _ => return None,
             };
             if seen & (1 << field) != 0 {
@@ -136,19 +136,21 @@ impl<'a> Scanner<'a> {
         }
     }
 
+    /// The bytes of a string without escapes or control characters (keys: compared as bytes).
+    fn plain_bytes(&mut self) -> Option<&'a [u8]> {
+        self.expect(b'"')?;
+        let rest = &self.b[self.i..];
+        let end = rest.iter().position(|&c| c == b'"' || c == b'\\' || c < 0x20)?;
+        if rest[end] != b'"' {
+            return None;
+        }
+        self.i += end + 1;
+        Some(&rest[..end])
+    }
+
     /// A string without escapes or control characters, borrowed; valid UTF-8 only.
     fn plain_string(&mut self) -> Option<&'a str> {
-        self.expect(b'"')?;
-        let start = self.i;
-        loop {
-            match self.next()? {
-                b'"' => break,
-                b'\\' => return None,
-                c if c < 0x20 => return None,
-                _ => {}
-            }
-        }
-        std::str::from_utf8(&self.b[start..self.i - 1]).ok()
+        std::str::from_utf8(self.plain_bytes()?).ok()
     }
 
     /// `-?(0|[1-9][0-9]*)` that fits an i64, not followed by a fraction or an exponent:

@@ -104,14 +104,18 @@ pub fn commit<C: Consumer<SourceContext>>(consumer: &C, topic: &str, offsets: &[
 pub fn run(consumer: BaseConsumer<SourceContext>, pipeline: Arc<Mutex<Pipeline>>, shutdown: Shutdown) {
     let topic = consumer.context().input_topic.clone();
     let mut errors_logged = 0u32;
-    // Publishing and snapshots are due on a clock; it is read every few messages, not each one.
+    // Publishing and snapshots are due on a clock, and event times are checked against the wall
+    // clock; both are read every 64 messages and whenever the consumer is idle, not per message.
+    // The wall clock may thus lag by up to 64 messages' time, which only makes the future-time
+    // check (`limits.max_clock_skew_seconds`, minutes) stricter by that much.
     let mut since_check = 0u32;
+    let mut wall_ms = now_ms();
     while !shutdown.is_triggered() {
         since_check = since_check.saturating_add(1);
         match consumer.poll(Duration::from_millis(100)) {
             Some(Ok(m)) => {
                 let (p, o) = (m.partition(), m.offset());
-                let again = lock(&pipeline).on_message(p, o, m.key(), m.payload(), now_ms());
+                let again = lock(&pipeline).on_message(p, o, m.key(), m.payload(), wall_ms);
                 drop(m);
                 if let Some(from) = again {
                     if let Err(e) = consumer.seek(&topic, p, Offset::Offset(from), Duration::from_secs(10)) {
@@ -134,6 +138,7 @@ pub fn run(consumer: BaseConsumer<SourceContext>, pipeline: Arc<Mutex<Pipeline>>
             continue;
         }
         since_check = 0;
+        wall_ms = now_ms();
         let offsets = {
             let mut p = lock(&pipeline);
             p.publish_due(false);
