@@ -108,6 +108,10 @@ async fn demo(args: DemoArgs) -> anyhow::Result<()> {
     let live = std::io::stdout().is_terminal();
     let started = Instant::now();
     let mut last_print = Instant::now();
+    // The figures as last seen while the sidecar held its experiments: Ctrl-C stops the sidecar
+    // at once, and it hands its experiments back as it stops.
+    let mut last_seen: Option<(String, String)> = None;
+    let holds_experiments = |served: &Served| served.table.read().map(|t| !t.rows.is_empty()).unwrap_or(false);
     loop {
         tokio::select! {
             _ = tokio::time::sleep(Duration::from_secs(1)) => {},
@@ -115,6 +119,9 @@ async fn demo(args: DemoArgs) -> anyhow::Result<()> {
         }
         if shutdown.is_triggered() || deadline.is_some_and(|d| Instant::now() >= d) || sidecar.is_finished() {
             break;
+        }
+        if holds_experiments(&served) {
+            last_seen = Some((render(&served, started.elapsed(), produced.load(Ordering::Relaxed)), summary(&served)));
         }
         if live {
             print!("\x1b[2J\x1b[H{}", render(&served, started.elapsed(), produced.load(Ordering::Relaxed)));
@@ -130,8 +137,10 @@ async fn demo(args: DemoArgs) -> anyhow::Result<()> {
     if !sidecar.is_finished() {
         tokio::time::sleep(Duration::from_millis(1500)).await;
     }
-    let table = render(&served, started.elapsed(), produced.load(Ordering::Relaxed));
-    let outcome = summary(&served);
+    let (table, outcome) = match (holds_experiments(&served), last_seen) {
+        (false, Some(seen)) => seen,
+        _ => (render(&served, started.elapsed(), produced.load(Ordering::Relaxed)), summary(&served)),
+    };
     shutdown.trigger();
     sidecar.await??;
     println!("{table}");
