@@ -28,7 +28,6 @@
 use std::collections::HashMap;
 use std::fmt::Write as _;
 use std::io::{BufRead, BufReader, Read, Write};
-use std::net::TcpStream;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, ExitCode, Stdio};
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
@@ -36,6 +35,9 @@ use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 
 use anyhow::{anyhow, bail, Context as _};
+
+#[path = "../tests/common/http.rs"]
+mod http;
 use clap::{Parser, Subcommand};
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
@@ -304,30 +306,7 @@ impl Drop for Guarded {
 // HTTP on loopback.
 
 fn http_get(addr: &str, path: &str) -> std::io::Result<(u16, String)> {
-    let mut s = TcpStream::connect(addr)?;
-    s.set_read_timeout(Some(Duration::from_secs(30)))?;
-    write!(s, "GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n")?;
-    let mut raw = Vec::new();
-    s.read_to_end(&mut raw)?;
-    let raw = String::from_utf8_lossy(&raw);
-    let status = raw.split_whitespace().nth(1).and_then(|c| c.parse().ok()).unwrap_or(0);
-    let (head, body) = raw.split_once("\r\n\r\n").unwrap_or((&raw, ""));
-    let body = if head.to_ascii_lowercase().contains("transfer-encoding: chunked") { dechunk(body) } else { body.to_string() };
-    Ok((status, body))
-}
-
-fn dechunk(body: &str) -> String {
-    let mut out = String::new();
-    let mut rest = body;
-    while let Some((size, tail)) = rest.split_once("\r\n") {
-        let n = usize::from_str_radix(size.trim(), 16).unwrap_or(0);
-        if n == 0 || tail.len() < n {
-            break;
-        }
-        out.push_str(&tail[..n]);
-        rest = tail[n..].trim_start_matches("\r\n");
-    }
-    out
+    http::get(addr, path, Duration::from_secs(30))
 }
 
 /// (all events counted, rejected ones) from a `/metrics` scrape.

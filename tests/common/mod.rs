@@ -3,9 +3,9 @@
 //! topics. Every wait is bounded by a deadline.
 #![allow(dead_code)]
 
-use std::io::{Read, Write};
-use std::net::TcpStream;
 use std::time::{Duration, Instant};
+
+pub mod http;
 
 use apportion::config::Config;
 use apportion::shutdown::Shutdown;
@@ -100,31 +100,9 @@ pub fn wait_until(within: Duration, mut f: impl FnMut() -> bool) -> bool {
     f()
 }
 
-/// A minimal HTTP/1.1 GET on loopback.
+/// A minimal HTTP/1.1 GET on loopback, with a 5 s read timeout.
 pub fn http_get(addr: &str, path: &str) -> std::io::Result<(u16, String)> {
-    let mut s = TcpStream::connect(addr)?;
-    s.set_read_timeout(Some(Duration::from_secs(5)))?;
-    write!(s, "GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n")?;
-    let mut raw = String::new();
-    s.read_to_string(&mut raw)?;
-    let status = raw.split_whitespace().nth(1).and_then(|c| c.parse().ok()).unwrap_or(0);
-    let body = raw.split_once("\r\n\r\n").map(|(_, b)| b.to_string()).unwrap_or_default();
-    let body = if raw.to_ascii_lowercase().contains("transfer-encoding: chunked") { dechunk(&body) } else { body };
-    Ok((status, body))
-}
-
-fn dechunk(body: &str) -> String {
-    let mut out = String::new();
-    let mut rest = body;
-    while let Some((size, tail)) = rest.split_once("\r\n") {
-        let n = usize::from_str_radix(size.trim(), 16).unwrap_or(0);
-        if n == 0 || tail.len() < n {
-            break;
-        }
-        out.push_str(&tail[..n]);
-        rest = tail[n..].trim_start_matches("\r\n");
-    }
-    out
+    http::get(addr, path, Duration::from_secs(5))
 }
 
 /// Creates `topics` with `partitions` partitions each (those that exist are left alone).
