@@ -44,6 +44,18 @@ fn apply(c: &mut Criterion) {
     g.finish();
 }
 
+/// Decoding the contract's event JSON, as the benchmark topic of `scripts/bench-pipeline` has it.
+fn decode(c: &mut Criterion) {
+    let mut g = c.benchmark_group("decode");
+    let impression = br#"{"event_id":"i-123456","kind":"impression","experiment":"tput-00007","arm":"arm-3","ts_ms":1764547200123,"count":1,"propensity":0.2000}"#;
+    let reward = br#"{"event_id":"r-123457","kind":"reward","experiment":"tput-00007","arm":"arm-3","ts_ms":1764547200123,"reward":1.0}"#;
+    g.throughput(Throughput::Elements(1));
+    for (name, bytes) in [("impression", &impression[..]), ("reward", &reward[..])] {
+        g.bench_function(name, |b| b.iter(|| black_box(apportion::event::decode(black_box(bytes), 16_384, 1_764_547_300_000, 300_000).is_ok())));
+    }
+    g.finish();
+}
+
 fn weights(c: &mut Criterion) {
     let mut g = c.benchmark_group("weights");
     for policy in [PolicyName::Thompson, PolicyName::Ucb1, PolicyName::KlUcb, PolicyName::EpsilonGreedy, PolicyName::Fixed] {
@@ -62,5 +74,5 @@ fn fleet(c: &mut Criterion) {
     });
 }
 
-criterion_group!(benches, apply, weights, fleet);
+criterion_group!(benches, apply, decode, weights, fleet);
 criterion_main!(benches);

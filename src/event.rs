@@ -163,8 +163,20 @@ fn borrowed<'de, D: serde::Deserializer<'de>>(d: D) -> Result<Option<Cow<'de, st
 
 /// `[A-Za-z0-9._-]{1,64}`: experiment and arm names.
 pub fn valid_name(s: &str) -> bool {
-    !s.is_empty() && s.len() <= 64 && s.bytes().all(|b| b.is_ascii_alphanumeric() || b == b'.' || b == b'_' || b == b'-')
+    !s.is_empty() && s.len() <= 64 && s.bytes().all(|b| NAME_BYTES[usize::from(b)])
 }
+
+/// The bytes `valid_name` allows, as a table (one load per byte instead of four tests).
+const NAME_BYTES: [bool; 256] = {
+    let mut t = [false; 256];
+    let mut i = 0;
+    while i < 256 {
+        let b = i as u8;
+        t[i] = b.is_ascii_alphanumeric() || b == b'.' || b == b'_' || b == b'-';
+        i += 1;
+    }
+    t
+};
 
 /// Decodes and validates one message value. `now_ms` and `max_skew_ms` bound the event time;
 /// the reward range is checked later, by the experiment's reward model.
@@ -172,23 +184,22 @@ pub fn decode(bytes: &[u8], max_bytes: usize, now_ms: i64, max_skew_ms: i64) -> 
     if bytes.len() > max_bytes {
         return Err(Reason::TooLarge);
     }
-    let parsed = match scan::scan(bytes) {
-        Some(raw) => Ok(raw),
-        None => serde_json::from_slice(bytes),
-    };
-    let raw: Raw = parsed.map_err(|e| {
-        use serde_json::error::Category;
-        match e.classify() {
-            Category::Data => {
-                if first_byte(bytes) == Some(b'{') {
-                    Reason::WrongType
-                } else {
-                    Reason::NotObject
+    let mut raw = Raw::default();
+    if scan::scan(bytes, &mut raw).is_none() {
+        raw = serde_json::from_slice(bytes).map_err(|e| {
+            use serde_json::error::Category;
+            match e.classify() {
+                Category::Data => {
+                    if first_byte(bytes) == Some(b'{') {
+                        Reason::WrongType
+                    } else {
+                        Reason::NotObject
+                    }
                 }
+                Category::Io | Category::Syntax | Category::Eof => Reason::NotJson,
             }
-            Category::Io | Category::Syntax | Category::Eof => Reason::NotJson,
-        }
-    })?;
+        })?;
+    }
     let (Some(event_id), Some(kind), Some(experiment), Some(arm), Some(ts_ms)) =
         (raw.event_id, raw.kind, raw.experiment, raw.arm, raw.ts_ms)
     else {
