@@ -121,7 +121,8 @@ pub struct Limits {
     pub experiments: usize,
     /// Arms per experiment.
     pub arms_per_experiment: usize,
-    /// Event ids remembered per input partition for dropping duplicates.
+    /// Event ids remembered per input partition for dropping duplicates (at least the newest
+    /// this many, at most twice as many: see `stream::dedup`).
     pub duplicate_window: usize,
     /// How far in the future (seconds) an event time may lie.
     pub max_clock_skew_seconds: f64,

@@ -855,7 +855,7 @@ fn a_flood_of_new_experiments_and_arms_is_dead_lettered_within_bounded_memory() 
     //                        their headers and librdkafka's per-message overhead (~60 MB)
     //   experiments          1 000 × 8 arms: statistics, ~7 metric series per arm and the
     //                        /experiments JSON (~30 MB)
-    //   duplicate windows    3 partitions × 10 000 hashes (< 1 MB); snapshots of them (< 2 MB)
+    //   duplicate windows    3 partitions × up to 20 000 hashes (< 1 MB); snapshots (< 2 MB)
     //   runtime, threads, binary (~40 MB)
     // ≈ 240 MB; the bound leaves 25 % on top. Memory that grew with the number of distinct
     // experiments or arms offered (900 000 and 100 000 here) would break it by far.

@@ -1,30 +1,40 @@
 //! The duplicate window: the most recent event ids of one input partition.
 //!
-//! Ids are kept as 64-bit hashes (FxHash), oldest first, so the window and its snapshot stay
-//! small: 10 000 ids take about 80 kB. Two different ids share a hash with probability about
+//! Ids are kept as 64-bit hashes (FxHash), so the window and its snapshot stay small: 10 000 ids
+//! take about 80 kB in a snapshot. Two different ids share a hash with probability about
 //! window / 2⁶⁴ per event, negligible against the duplicates the window exists to catch.
+//!
+//! The window is two generations of `capacity` ids each: new ids go into the current one;
+//! when it is full, the older generation is dropped whole and the current one takes its place.
+//! It therefore remembers at least the newest `capacity` ids and at most twice that, and
+//! forgetting costs nothing per event (an exact window of `capacity` ids had to find and
+//! remove its oldest id on every insert).
 
-use std::collections::VecDeque;
 use std::hash::{BuildHasher, BuildHasherDefault};
 
 use rustc_hash::{FxHashSet, FxHasher};
 
 pub struct DedupWindow {
     capacity: usize,
-    order: VecDeque<u64>,
-    seen: FxHashSet<u64>,
+    older: FxHashSet<u64>,
+    current: FxHashSet<u64>,
 }
 
 impl DedupWindow {
     pub fn new(capacity: usize) -> Self {
-        DedupWindow { capacity: capacity.max(1), order: VecDeque::new(), seen: FxHashSet::default() }
+        DedupWindow { capacity: capacity.max(1), older: FxHashSet::default(), current: FxHashSet::default() }
     }
 
-    /// Rebuilds a window from its snapshot (oldest first), keeping the newest `capacity` ids.
+    /// Rebuilds a window from its snapshot (older generation first), keeping the last
+    /// `capacity` ids listed in the current generation and up to `capacity` before them in the
+    /// older one.
     pub fn restore(capacity: usize, ids: &[u64]) -> Self {
         let mut w = DedupWindow::new(capacity);
-        let skip = ids.len().saturating_sub(w.capacity);
-        for &id in &ids[skip..] {
+        let keep = ids.len().min(2 * w.capacity);
+        let ids = &ids[ids.len() - keep..];
+        let split = keep.saturating_sub(w.capacity);
+        w.older.extend(&ids[..split]);
+        for &id in &ids[split..] {
             w.insert_hash(id);
         }
         w
@@ -35,7 +45,7 @@ impl DedupWindow {
     }
 
     pub fn contains(&self, event_id: &str) -> bool {
-        self.seen.contains(&Self::hash(event_id))
+        self.contains_hash(Self::hash(event_id))
     }
 
     pub fn insert(&mut self, event_id: &str) {
@@ -44,32 +54,33 @@ impl DedupWindow {
 
     /// For a hash from [`DedupWindow::hash`]: the hot path hashes each id once.
     pub fn contains_hash(&self, h: u64) -> bool {
-        self.seen.contains(&h)
+        self.current.contains(&h) || self.older.contains(&h)
     }
 
     pub fn insert_hash(&mut self, h: u64) {
-        if !self.seen.insert(h) {
+        if self.contains_hash(h) {
             return;
         }
-        self.order.push_back(h);
-        if self.order.len() > self.capacity {
-            if let Some(old) = self.order.pop_front() {
-                self.seen.remove(&old);
-            }
+        if self.current.len() >= self.capacity {
+            // The older generation goes; its set's memory is reused for the next one.
+            std::mem::swap(&mut self.older, &mut self.current);
+            self.current.clear();
         }
+        self.current.insert(h);
     }
 
-    /// Oldest first, for snapshots.
+    /// The older generation, then the current one, for snapshots. (Within a generation the
+    /// order does not matter: a generation is forgotten whole.)
     pub fn ids(&self) -> Vec<u64> {
-        self.order.iter().copied().collect()
+        self.older.iter().chain(&self.current).copied().collect()
     }
 
     pub fn len(&self) -> usize {
-        self.order.len()
+        self.older.len() + self.current.len()
     }
 
     pub fn is_empty(&self) -> bool {
-        self.order.is_empty()
+        self.len() == 0
     }
 }
 
@@ -78,13 +89,35 @@ mod tests {
     use super::*;
 
     #[test]
-    fn forgets_the_oldest_id_beyond_capacity() {
+    fn remembers_at_least_the_newest_ids_and_at_most_twice_as_many() {
         let mut w = DedupWindow::new(2);
-        w.insert("a");
-        w.insert("b");
+        for id in ["a", "b", "c", "d"] {
+            w.insert(id);
+        }
+        assert!(w.contains("a") && w.contains("d") && w.len() == 4, "two full generations");
+        w.insert("e");
+        assert!(!w.contains("a") && !w.contains("b"), "the older generation goes whole");
+        assert!(w.contains("c") && w.contains("d") && w.contains("e") && w.len() == 3);
         w.insert("c");
-        assert!(!w.contains("a") && w.contains("b") && w.contains("c"));
-        let r = DedupWindow::restore(2, &w.ids());
-        assert!(r.contains("b") && r.contains("c") && r.len() == 2);
+        assert_eq!(w.len(), 3, "an id already held is not added again");
+    }
+
+    #[test]
+    fn a_restored_window_remembers_what_the_snapshot_listed() {
+        let mut w = DedupWindow::new(3);
+        for id in ["a", "b", "c", "d", "e"] {
+            w.insert(id);
+        }
+        let r = DedupWindow::restore(3, &w.ids());
+        assert_eq!(r.len(), 5);
+        assert!(["a", "b", "c", "d", "e"].iter().all(|id| r.contains(id)));
+        // A snapshot longer than two generations (written with a larger window) keeps the last.
+        let long: Vec<u64> = (0..10).collect();
+        let r = DedupWindow::restore(3, &long);
+        assert_eq!(r.len(), 6);
+        assert!(!r.contains_hash(3) && r.contains_hash(4) && r.contains_hash(9));
+        // One written by an exact window of the same size restores whole.
+        let exact: Vec<u64> = (0..3).collect();
+        assert_eq!(DedupWindow::restore(3, &exact).len(), 3);
     }
 }
