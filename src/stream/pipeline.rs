@@ -9,7 +9,7 @@ use std::time::{Duration, Instant};
 
 use rdkafka::consumer::{BaseConsumer, Consumer};
 use rdkafka::message::{Header, Message, OwnedHeaders};
-use rdkafka::producer::{BaseRecord, DeliveryResult, Producer, ProducerContext, ThreadedProducer};
+use rdkafka::producer::{BaseProducer, BaseRecord, DeliveryResult, Producer, ProducerContext};
 use rdkafka::{ClientContext, Offset, TopicPartitionList};
 use rustc_hash::FxHashMap;
 
@@ -42,7 +42,11 @@ impl ProducerContext for DeliveryWatch {
     }
 }
 
-pub type Sink = ThreadedProducer<DeliveryWatch>;
+/// The producer of weights, snapshots and dead letters. Its delivery reports are served by the
+/// consumer thread between messages ([`Pipeline::serve_deliveries`]), while it waits for a full
+/// queue to drain, and by `flush`: no thread of its own, which would wake every 100 ms and
+/// spin through the last millisecond of each wait.
+pub type Sink = BaseProducer<DeliveryWatch>;
 
 /// Called with each state-topic message read: offset, key, value.
 type StateVisitor<'a> = dyn FnMut(i64, Option<&[u8]>, &[u8]) + 'a;
@@ -179,6 +183,10 @@ struct Ctx {
     sink: Arc<Sink>,
     /// `apportion_events_total` handles, in the order of `PartitionState::events`.
     events: Vec<IntCounter>,
+    /// Events counted since the handles above were last brought up to date: they are, once
+    /// per batch of messages ([`Pipeline::export_counts`]), not per event, since every
+    /// increment of a shared counter is an atomic write the consumer thread waits for.
+    unexported: [u64; 9],
 }
 
 /// One input message.
@@ -193,7 +201,7 @@ struct Msg<'a> {
 #[derive(Default)]
 struct Holdings {
     /// Experiment → the partition whose copy publishes it (the first to see it).
-    owners: HashMap<String, i32>,
+    owners: FxHashMap<String, i32>,
     /// Experiments held over all partitions (for `limits.experiments`).
     held: usize,
 }
@@ -217,13 +225,13 @@ impl Ctx {
         &self.served.metrics
     }
 
-    fn count(&self, part: &mut PartitionState, kind: usize, outcome: usize) {
+    fn count(&mut self, part: &mut PartitionState, kind: usize, outcome: usize) {
         let i = kind * 3 + outcome;
-        self.events[i].inc();
+        self.unexported[i] += 1;
         part.events[i] += 1;
     }
 
-    fn reject(&self, part: &mut PartitionState, msg: &Msg<'_>, reason: Reason, kind: usize) {
+    fn reject(&mut self, part: &mut PartitionState, msg: &Msg<'_>, reason: Reason, kind: usize) {
         self.count(part, kind, REJECTED);
         self.metrics().dead_letters.with_label_values(&[reason.code()]).inc();
         *part.counters.dead_letters.entry(reason.code().to_string()).or_default() += 1;
@@ -262,7 +270,7 @@ impl Ctx {
     }
 
     /// Decodes, checks and applies one event, or dead-letters it with its reason.
-    fn apply(&self, holdings: &mut Holdings, part: &mut PartitionState, msg: &Msg<'_>, now_ms: i64) {
+    fn apply(&mut self, holdings: &mut Holdings, part: &mut PartitionState, msg: &Msg<'_>, now_ms: i64) {
         let ev = match event::decode(msg.bytes, self.s.max_event_bytes, now_ms, self.s.max_skew_ms) {
             Ok(ev) => ev,
             Err(reason) => return self.reject(part, msg, reason, UNKNOWN),
@@ -332,7 +340,7 @@ impl Pipeline {
             })
             .collect();
         Pipeline {
-            ctx: Ctx { s, served, sink, events },
+            ctx: Ctx { s, served, sink, events, unexported: [0; 9] },
             state_reader,
             state_partitions: state_partitions.max(1),
             partitions: BTreeMap::new(),
@@ -551,6 +559,22 @@ impl Pipeline {
             return false;
         }
         true
+    }
+
+    /// Brings `apportion_events_total` up to date with the events counted since the last call.
+    /// Called after every batch of messages.
+    pub fn export_counts(&mut self) {
+        for (counter, n) in self.ctx.events.iter().zip(&mut self.ctx.unexported) {
+            if *n > 0 {
+                counter.inc_by(std::mem::take(n));
+            }
+        }
+    }
+
+    /// Serves the producer's pending delivery reports without waiting. Called between
+    /// messages, with the publish and snapshot checks.
+    pub fn serve_deliveries(&self) {
+        self.ctx.sink.poll(Duration::ZERO);
     }
 
     pub fn snapshot_due(&mut self) -> Vec<(i32, i64)> {
@@ -823,7 +847,8 @@ fn send_with_retry(sink: &Sink, mut record: BaseRecord<'_, [u8], [u8]>) {
                     return;
                 }
                 record = r;
-                std::thread::sleep(Duration::from_millis(100));
+                // Delivery reports free the queue; nothing else serves them meanwhile.
+                sink.poll(Duration::from_millis(100));
             }
         }
     }

@@ -99,56 +99,80 @@ pub fn commit<C: Consumer<SourceContext>>(consumer: &C, topic: &str, offsets: &[
     }
 }
 
+/// Messages handed to the pipeline under one lock. The first of a batch is waited for (up to
+/// 100 ms); the rest are only those the client already holds (`poll` with no wait, which also
+/// spares the client its clock reads for a timeout).
+const BATCH: usize = 64;
+
 /// Runs until shutdown: read, apply, publish on the interval, snapshot on the interval. On
 /// shutdown: publish, snapshot, commit, and leave the group.
+///
+/// Messages are applied in batches. A rebalance callback runs inside `poll` and makes it return
+/// nothing, which ends the batch; the messages polled before it are applied after it. That is
+/// safe: a partition just handed back is no longer in the pipeline, so its messages are passed
+/// over (its snapshot, written in the callback, ends before them, so its next owner reads them),
+/// and a partition just taken over cannot have messages polled before it was assigned.
 pub fn run(consumer: BaseConsumer<SourceContext>, pipeline: Arc<Mutex<Pipeline>>, shutdown: Shutdown) {
     let topic = consumer.context().input_topic.clone();
     let mut errors_logged = 0u32;
     // Publishing and snapshots are due on a clock, and event times are checked against the wall
-    // clock; both are read every 64 messages and whenever the consumer is idle, not per message.
-    // The wall clock may thus lag by up to 64 messages' time, which only makes the future-time
+    // clock; both are read after every batch and whenever the consumer is idle, not per message.
+    // The wall clock may thus lag by up to one batch's time, which only makes the future-time
     // check (`limits.max_clock_skew_seconds`, minutes) stricter by that much.
-    let mut since_check = 0u32;
     let mut wall_ms = now_ms();
+    let mut batch = Vec::with_capacity(BATCH);
+    let mut seeks: Vec<(i32, i64)> = Vec::new();
     while !shutdown.is_triggered() {
-        since_check = since_check.saturating_add(1);
-        match consumer.poll(Duration::from_millis(100)) {
-            Some(Ok(m)) => {
-                let (p, o) = (m.partition(), m.offset());
-                let again = lock(&pipeline).on_message(p, o, m.key(), m.payload(), wall_ms);
-                drop(m);
-                if let Some(from) = again {
-                    if let Err(e) = consumer.seek(&topic, p, Offset::Offset(from), Duration::from_secs(10)) {
-                        tracing::error!(partition = p, "cannot read the partition again from offset {from}: {e}");
+        let mut wait = Duration::from_millis(100);
+        while batch.len() < BATCH {
+            match consumer.poll(wait) {
+                Some(Ok(m)) => batch.push(m),
+                Some(Err(e)) => {
+                    if errors_logged < 20 {
+                        tracing::warn!("consumer: {e}");
+                        errors_logged += 1;
                     }
+                    break;
+                }
+                None => {
+                    if batch.is_empty() {
+                        errors_logged = 0;
+                    }
+                    break;
                 }
             }
-            Some(Err(e)) => {
-                if errors_logged < 20 {
-                    tracing::warn!("consumer: {e}");
-                    errors_logged += 1;
-                }
-            }
-            None => {
-                errors_logged = 0;
-                since_check = 64;
-            }
+            wait = Duration::ZERO;
         }
-        if since_check < 64 {
-            continue;
-        }
-        since_check = 0;
-        wall_ms = now_ms();
         let offsets = {
             let mut p = lock(&pipeline);
+            for m in batch.drain(..) {
+                let part = m.partition();
+                // Once a partition is to be read again from further back, the rest of what
+                // was fetched for it is stale.
+                if seeks.iter().any(|&(s, _)| s == part) {
+                    continue;
+                }
+                if let Some(from) = p.on_message(part, m.offset(), m.key(), m.payload(), wall_ms) {
+                    seeks.push((part, from));
+                }
+            }
+            p.export_counts();
+            wall_ms = now_ms();
+            p.serve_deliveries();
             p.publish_due(false);
             p.snapshot_due()
         };
+        for (p, from) in seeks.drain(..) {
+            if let Err(e) = consumer.seek(&topic, p, Offset::Offset(from), Duration::from_secs(10)) {
+                tracing::error!(partition = p, "cannot read the partition again from offset {from}: {e}");
+            }
+        }
         commit(&consumer, &topic, &offsets, CommitMode::Async);
     }
     tracing::info!("stopping: publishing and writing snapshots");
     let offsets = {
         let mut p = lock(&pipeline);
+        p.export_counts();
         p.publish_due(true);
         let owned = p.owned_partitions();
         p.snapshot(&owned)
