@@ -389,10 +389,8 @@ fn sample_snapshot() -> Snapshot {
     watch.commit(&[0.5, 0.5]);
     let late = watch.arm_or_add("late").expect("third arm");
     watch.observe(late, t0 + 20, Observation::Impression { count: 1 }).expect("impression");
-    let mut window = DedupWindow::new(8);
-    for i in 0..11 {
-        window.insert(&format!("imp-{i}"));
-    }
+    // Eight remembered event ids, oldest first, as a snapshot lists them.
+    let duplicates: Vec<u64> = (3..11).map(|i| DedupWindow::hash(&format!("imp-{i}"))).collect();
     Snapshot {
         format: snapshot::FORMAT,
         topic: "apportion.events".into(),
@@ -401,7 +399,7 @@ fn sample_snapshot() -> Snapshot {
         generation: 3,
         written_at_ms: t0 + 60_000,
         experiments: [("clicks".to_string(), clicks.state()), ("watch".to_string(), watch.state())].into_iter().collect(),
-        duplicates: window.ids(),
+        duplicates,
         counters: Counters {
             events: [("impression/applied", 254u64), ("reward/applied", 15), ("unknown/rejected", 2)]
                 .into_iter()
