@@ -53,6 +53,22 @@ fn decode(c: &mut Criterion) {
     for (name, bytes) in [("impression", &impression[..]), ("reward", &reward[..])] {
         g.bench_function(name, |b| b.iter(|| black_box(apportion::event::decode(black_box(bytes), 16_384, 1_764_547_300_000, 300_000).is_ok())));
     }
+    // A mix as a topic has it (experiments, arms, id lengths and kinds vary from one event to
+    // the next), so that branch prediction cannot learn one event by heart.
+    let mixed: Vec<String> = (0..256u64)
+        .map(|i| {
+            let (exp, arm) = (i * 7 % 12, i * 5 % 10);
+            if i % 23 == 0 {
+                format!(r#"{{"event_id":"r-{}","kind":"reward","experiment":"tput-{exp:05}","arm":"arm-{arm}","ts_ms":1764547200{i:03},"reward":1.0}}"#, i * 7919)
+            } else {
+                format!(r#"{{"event_id":"i-{}","kind":"impression","experiment":"tput-{exp:05}","arm":"arm-{arm}","ts_ms":1764547200{i:03},"count":1,"propensity":0.{:04}}}"#, i * 7919, 1000 + i)
+            }
+        })
+        .collect();
+    g.throughput(Throughput::Elements(mixed.len() as u64));
+    g.bench_function("mixed", |b| {
+        b.iter(|| mixed.iter().filter(|m| apportion::event::decode(black_box(m.as_bytes()), 16_384, 1_764_547_300_000, 300_000).is_ok()).count())
+    });
     g.finish();
 }
 

@@ -787,7 +787,9 @@ fn round_sidecar(env: &Env<'_>, topic: &str, n: u64, round: u32) -> anyhow::Resu
 /// each message and when it arrived (`history`), or only the latest (`!history`).
 #[derive(Default)]
 struct Seen {
-    arms: HashMap<String, HashMap<String, Vec<(u64, Instant)>>>,
+    /// Experiment → arm → (pulls, when this reader got the message, the message's
+    /// `published_at_ms`), in order of arrival.
+    arms: HashMap<String, HashMap<String, Vec<(u64, Instant, i64)>>>,
     messages: u64,
     bad: u64,
 }
@@ -831,6 +833,7 @@ impl WeightsReader {
                     g.bad += 1;
                     continue;
                 };
+                let published_ms = v["published_at_ms"].as_i64().unwrap_or(0);
                 let (Some(exp), Some(arms)) = (v["experiment"].as_str(), v["arms"].as_object()) else {
                     g.bad += 1;
                     continue;
@@ -842,7 +845,7 @@ impl WeightsReader {
                     if !history {
                         list.clear();
                     }
-                    list.push((pulls, at));
+                    list.push((pulls, at, published_ms));
                 }
             }
             Ok(())
@@ -951,6 +954,12 @@ struct Latency {
     transport_ms: (f64, f64, f64),
     /// Mean of the sidecar's own `apportion_publish_latency_seconds`, ms.
     sidecar_publish_ms: Option<f64>,
+    /// p50, p99, max (ms) of the three legs of each impression's latency: sent → a plain
+    /// consumer of the input topic has it; → the sidecar's `published_at_ms` of the first
+    /// weights message counting it; → the harness has that message.
+    legs: [(f64, f64, f64); 3],
+    /// Impressions the three legs are measured on (those the plain consumer saw).
+    legs_counted: u64,
 }
 
 fn percentile(sorted: &[f64], q: f64) -> f64 {
@@ -985,8 +994,13 @@ fn latency_phase(env: &Env<'_>) -> anyhow::Result<Latency> {
     let mut sent_at: Vec<Instant> = Vec::new();
     let mut rng = StdRng::seed_from_u64(a.seed ^ 0x5eed);
     let mut buf = String::with_capacity(256);
-    // (experiment, arm) → send instant of each impression, in order: index i is pull i + 1.
-    let mut sends: HashMap<(usize, usize), Vec<Instant>> = HashMap::new();
+    // (experiment, arm) → send instant and event number of each impression, in order: index i
+    // is pull i + 1.
+    let mut sends: HashMap<(usize, usize), Vec<(Instant, u64)>> = HashMap::new();
+    // Instants are turned into wall-clock milliseconds (to compare with the sidecar's
+    // `published_at_ms`, same machine and clock) from this one pair.
+    let (base_instant, base_unix_ms) = (Instant::now(), unix_ns() as f64 / 1e6);
+    let unix_ms_of = |t: Instant| base_unix_ms + t.saturating_duration_since(base_instant).as_secs_f64() * 1000.0;
     let started = Instant::now();
     let length = Duration::from_secs(a.latency_seconds);
     let (mut sent, mut impressions) = (0u64, 0u64);
@@ -1005,7 +1019,7 @@ fn latency_phase(env: &Env<'_>) -> anyhow::Result<Latency> {
                 reward(&mut buf, sent, exp, &arms[j], ts);
             } else {
                 impression(&mut buf, sent, exp, &arms[j], arms.len(), ts);
-                sends.entry((e, j)).or_default().push(now);
+                sends.entry((e, j)).or_default().push((now, sent));
                 impressions += 1;
             }
             sent_at.push(now);
@@ -1038,6 +1052,12 @@ fn latency_phase(env: &Env<'_>) -> anyhow::Result<Latency> {
         .and_then(|(_, body)| histogram_mean(&body, "apportion_publish_latency_seconds"))
         .map(|s| s * 1000.0);
     let arrivals = clock.finish();
+    let mut arrived_at: Vec<Option<Instant>> = vec![None; sent as usize];
+    for &(id, at) in &arrivals {
+        if let Some(slot) = arrived_at.get_mut(id as usize) {
+            *slot = Some(at);
+        }
+    }
     let mut transport: Vec<f64> = arrivals
         .iter()
         .filter_map(|&(id, at)| sent_at.get(id as usize).map(|s| at.saturating_duration_since(*s).as_secs_f64() * 1000.0))
@@ -1053,6 +1073,10 @@ fn latency_phase(env: &Env<'_>) -> anyhow::Result<Latency> {
         eprintln!("warning: {} weights messages could not be read", seen.bad);
     }
     let mut lat = Vec::with_capacity(impressions as usize);
+    // The same latency in three legs, for impressions the plain consumer saw too: input topic
+    // (sent → a plain consumer has it), sidecar (→ `published_at_ms` of the first message
+    // counting it), weights topic (→ this harness has that message).
+    let (mut leg_in, mut leg_sidecar, mut leg_out) = (Vec::new(), Vec::new(), Vec::new());
     let mut unpublished = 0u64;
     for ((e, j), times) in &sends {
         let (exp, arms, _) = &scen.experiments[*e];
@@ -1061,19 +1085,32 @@ fn latency_phase(env: &Env<'_>) -> anyhow::Result<Latency> {
         // Both lists are in order, and pulls only grow: one sweep pairs each pull with the first
         // message that counts it.
         let mut m = 0;
-        for (i, sent_at) in times.iter().enumerate() {
+        for (i, (sent_at, id)) in times.iter().enumerate() {
             let k = i as u64 + 1;
             while m < published.len() && published[m].0 < k {
                 m += 1;
             }
             match published.get(m) {
-                Some(&(_, at)) => lat.push(at.saturating_duration_since(*sent_at).as_secs_f64() * 1000.0),
+                Some(&(_, at, published_ms)) => {
+                    lat.push(at.saturating_duration_since(*sent_at).as_secs_f64() * 1000.0);
+                    if let Some(Some(arrived)) = arrived_at.get(*id as usize) {
+                        leg_in.push(arrived.saturating_duration_since(*sent_at).as_secs_f64() * 1000.0);
+                        leg_sidecar.push(published_ms as f64 - unix_ms_of(*arrived));
+                        leg_out.push(unix_ms_of(at) - published_ms as f64);
+                    }
+                }
                 None => unpublished += 1,
             }
         }
     }
     lat.sort_by(f64::total_cmp);
+    let legs = [&mut leg_in, &mut leg_sidecar, &mut leg_out].map(|v| {
+        v.sort_by(f64::total_cmp);
+        (percentile(v, 0.50), percentile(v, 0.99), v.last().copied().unwrap_or(f64::NAN))
+    });
     Ok(Latency {
+        legs,
+        legs_counted: leg_in.len() as u64,
         rate: offered,
         impressions,
         events: sent,
@@ -1305,6 +1342,20 @@ fn summary(a: &AllArgs, sc: &Scenario, fill_s: f64, rounds: &[Round], lat: Optio
         let _ = writeln!(s, "| event sent → weights message received | {:.0} | {:.0} | {:.0} | ≤ {target:.0} |", l.p50_ms, l.p99_ms, l.max_ms);
         let (t50, t99, tmax) = l.transport_ms;
         let _ = writeln!(s, "| event sent → received by a plain consumer (broker floor) | {t50:.0} | {t99:.0} | {tmax:.0} | — |");
+        let _ = writeln!(
+            s,
+            "\nThe same latency in legs ({} impressions; wall-clock milliseconds, one machine and clock):\n",
+            l.legs_counted
+        );
+        let _ = writeln!(s, "| leg | p50 ms | p99 ms | max ms | held by |");
+        let _ = writeln!(s, "|---|---|---|---|---|");
+        for (name, by, (p50, p99, max)) in [
+            ("sent → a plain consumer of the input topic has it", "broker (input topic)", l.legs[0]),
+            ("→ the sidecar publishes the first weights message counting it (`published_at_ms`)", "sidecar (and its fetches)", l.legs[1]),
+            ("→ the harness has that weights message", "broker (weights topic)", l.legs[2]),
+        ] {
+            let _ = writeln!(s, "| {name} | {p50:.0} | {p99:.0} | {max:.0} | {by} |");
+        }
         let own = l.sidecar_publish_ms.map_or("—".to_string(), |m| format!("{m:.0}"));
         let _ = writeln!(
             s,
