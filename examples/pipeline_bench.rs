@@ -785,11 +785,14 @@ fn round_sidecar(env: &Env<'_>, topic: &str, n: u64, round: u32) -> anyhow::Resu
 
 /// What this process saw on a weights topic: per experiment and arm, the cumulative pulls of
 /// each message and when it arrived (`history`), or only the latest (`!history`).
+/// One weights message as seen for one arm: pulls, when this reader got the message, the
+/// message's `published_at_ms`.
+type Sighting = (u64, Instant, i64);
+
 #[derive(Default)]
 struct Seen {
-    /// Experiment → arm → (pulls, when this reader got the message, the message's
-    /// `published_at_ms`), in order of arrival.
-    arms: HashMap<String, HashMap<String, Vec<(u64, Instant, i64)>>>,
+    /// Experiment → arm → sightings, in order of arrival.
+    arms: HashMap<String, HashMap<String, Vec<Sighting>>>,
     messages: u64,
     bad: u64,
 }
