@@ -561,6 +561,12 @@ impl Pipeline {
         true
     }
 
+    /// How long until the next publish round is due (zero if it is): the consumer waits for
+    /// messages no longer than this, so that rounds start on time even when input is sparse.
+    pub fn until_publish(&self) -> Duration {
+        self.ctx.s.publish_interval.saturating_sub(self.last_publish.elapsed())
+    }
+
     /// Brings `apportion_events_total` up to date with the events counted since the last call.
     /// Called after every batch of messages.
     pub fn export_counts(&mut self) {

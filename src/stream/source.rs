@@ -100,8 +100,8 @@ pub fn commit<C: Consumer<SourceContext>>(consumer: &C, topic: &str, offsets: &[
 }
 
 /// Messages handed to the pipeline under one lock. The first of a batch is waited for (up to
-/// 100 ms); the rest are only those the client already holds (`poll` with no wait, which also
-/// spares the client its clock reads for a timeout).
+/// 100 ms, and never past the next publish round); the rest are only those the client already
+/// holds (`poll` with no wait).
 const BATCH: usize = 64;
 
 /// Runs until shutdown: read, apply, publish on the interval, snapshot on the interval. On
@@ -122,8 +122,9 @@ pub fn run(consumer: BaseConsumer<SourceContext>, pipeline: Arc<Mutex<Pipeline>>
     let mut wall_ms = now_ms();
     let mut batch = Vec::with_capacity(BATCH);
     let mut seeks: Vec<(i32, i64)> = Vec::new();
+    let mut wait_at_most = Duration::from_millis(100);
     while !shutdown.is_triggered() {
-        let mut wait = Duration::from_millis(100);
+        let mut wait = wait_at_most;
         while batch.len() < BATCH {
             match consumer.poll(wait) {
                 Some(Ok(m)) => batch.push(m),
@@ -160,6 +161,7 @@ pub fn run(consumer: BaseConsumer<SourceContext>, pipeline: Arc<Mutex<Pipeline>>
             wall_ms = now_ms();
             p.serve_deliveries();
             p.publish_due(false);
+            wait_at_most = p.until_publish().clamp(Duration::from_millis(1), Duration::from_millis(100));
             p.snapshot_due()
         };
         for (p, from) in seeks.drain(..) {
