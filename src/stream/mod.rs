@@ -80,7 +80,9 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
     c.set("group.id", &cfg.kafka.group_id)
         .set("enable.auto.commit", "false")
         .set("enable.partition.eof", "false");
-    for (k, v) in [("auto.offset.reset", "earliest"), ("statistics.interval.ms", "5000")] {
+    // Offsets are committed explicitly, from snapshots; librdkafka's per-message offset store
+    // would only take a lock for every message.
+    for (k, v) in [("auto.offset.reset", "earliest"), ("statistics.interval.ms", "5000"), ("enable.auto.offset.store", "false")] {
         if !cfg.kafka.client.contains_key(k) {
             c.set(k, v);
         }
