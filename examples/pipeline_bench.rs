@@ -18,8 +18,9 @@
 //! - *events per second*: events read divided by the wall time from the first event seen to the
 //!   last. The bare consumer reports both instants itself; for the sidecar they are the first
 //!   scrape of `/metrics` where `apportion_events_total` (all kinds and outcomes) is above zero
-//!   and the first where it reaches the events produced (scrapes every 50 ms, so each end is
-//!   late by at most that).
+//!   and the first where it reaches the events produced. Scrapes come every 50 ms near either
+//!   end and sparser in between, so that they cost the sidecar little; each end is late by at
+//!   most the pause before it, 50 ms at a steady rate.
 //! - *CPU seconds*: user + system time of the child process from /proc/PID/stat, read just
 //!   before it is stopped: start-up included. *CPU in window* is the part spent between the two
 //!   instants above.
@@ -776,19 +777,29 @@ fn round_sidecar(env: &Env<'_>, topic: &str, n: u64, round: u32) -> anyhow::Resu
             progress("apportion", format!("{seen}/{n} events counted"));
             last_report = Instant::now();
         }
-        std::thread::sleep(Duration::from_millis(50));
+        // Every 50 ms while waiting for the first event and near the last; in between, half
+        // the time the rest should take at the rate so far (at most 500 ms), so that the
+        // scrapes themselves (a connection and a rendering each) cost the sidecar little.
+        let pause = match first {
+            Some(start) if seen > 0 && seen < n => {
+                let rate = seen as f64 / start.elapsed().as_secs_f64().max(1e-3);
+                Duration::from_secs_f64(((n - seen) as f64 / rate / 2.0).clamp(0.05, 0.5))
+            }
+            _ => Duration::from_millis(50),
+        };
+        std::thread::sleep(pause);
     }
 }
 
 // ---------------------------------------------------------------------------------------------
 // Weights topic reader, shared by the latency and memory phases.
 
-/// What this process saw on a weights topic: per experiment and arm, the cumulative pulls of
-/// each message and when it arrived (`history`), or only the latest (`!history`).
 /// One weights message as seen for one arm: pulls, when this reader got the message, the
 /// message's `published_at_ms`.
 type Sighting = (u64, Instant, i64);
 
+/// What this process saw on a weights topic: per experiment and arm, the cumulative pulls of
+/// each message and when it arrived (`history`), or only the latest (`!history`).
 #[derive(Default)]
 struct Seen {
     /// Experiment → arm → sightings, in order of arrival.

@@ -127,11 +127,7 @@ struct PartitionState {
     next_offset: i64,
     experiments: FxHashMap<String, Entry>,
     dedup: DedupWindow,
-    /// Dead letters and split events; the event counts live in `events` and are written into
-    /// `counters.events` only when a snapshot is taken.
-    counters: Counters,
-    /// Events by `KINDS` × `OUTCOMES` (kind * 3 + outcome), restored values included.
-    events: [u64; 9],
+    tally: Tally,
     /// Generation of the last snapshot written (or loaded) of this partition.
     generation: u64,
     /// The part slot (0 or 1) of the newest complete snapshot written in parts; the next one
@@ -142,11 +138,21 @@ struct PartitionState {
     resume_check: Option<ResumeCheck>,
 }
 
+/// What a partition counted, apart from its experiments so that both can be borrowed at once.
+#[derive(Default)]
+struct Tally {
+    /// Dead letters and split events; the event counts live in `events` and are written into
+    /// `counters.events` only when a snapshot is taken.
+    counters: Counters,
+    /// Events by `KINDS` × `OUTCOMES` (kind * 3 + outcome), restored values included.
+    events: [u64; 9],
+}
+
 impl PartitionState {
     fn counters_for_snapshot(&self) -> Counters {
-        let mut c = self.counters.clone();
+        let mut c = self.tally.counters.clone();
         c.events = BTreeMap::new();
-        for (i, &n) in self.events.iter().enumerate() {
+        for (i, &n) in self.tally.events.iter().enumerate() {
             if n > 0 {
                 c.events.insert(format!("{}/{}", KINDS[i / 3], OUTCOMES[i % 3]), n);
             }
@@ -225,16 +231,16 @@ impl Ctx {
         &self.served.metrics
     }
 
-    fn count(&mut self, part: &mut PartitionState, kind: usize, outcome: usize) {
+    fn count(&mut self, tally: &mut Tally, kind: usize, outcome: usize) {
         let i = kind * 3 + outcome;
         self.unexported[i] += 1;
-        part.events[i] += 1;
+        tally.events[i] += 1;
     }
 
-    fn reject(&mut self, part: &mut PartitionState, msg: &Msg<'_>, reason: Reason, kind: usize) {
-        self.count(part, kind, REJECTED);
+    fn reject(&mut self, tally: &mut Tally, msg: &Msg<'_>, reason: Reason, kind: usize) {
+        self.count(tally, kind, REJECTED);
         self.metrics().dead_letters.with_label_values(&[reason.code()]).inc();
-        *part.counters.dead_letters.entry(reason.code().to_string()).or_default() += 1;
+        *tally.counters.dead_letters.entry(reason.code().to_string()).or_default() += 1;
         let source = format!("{}/{}/{}", self.s.input_topic, msg.partition, msg.offset);
         let headers = OwnedHeaders::new()
             .insert(Header { key: "apportion-reason", value: Some(reason.code()) })
@@ -246,13 +252,13 @@ impl Ctx {
         send_with_retry(&self.sink, record);
     }
 
-    fn note_split(&self, part: &mut PartitionState, experiment: &str) {
+    fn note_split(&self, tally: &mut Tally, experiment: &str) {
         self.metrics().split.with_label_values(&[experiment]).inc();
-        *part.counters.split.entry(experiment.to_string()).or_default() += 1;
+        *tally.counters.split.entry(experiment.to_string()).or_default() += 1;
     }
 
     /// Records which partition publishes `experiment`: the first to hold it.
-    fn note_owner(&self, holdings: &mut Holdings, part: &mut PartitionState, partition: i32, experiment: &str) {
+    fn note_owner(&self, holdings: &mut Holdings, tally: &mut Tally, partition: i32, experiment: &str) {
         match holdings.owners.get(experiment) {
             None => {
                 holdings.owners.insert(experiment.to_string(), partition);
@@ -263,7 +269,7 @@ impl Ctx {
                     partitions = ?[owner, partition],
                     "experiment seen on more than one input partition; key its events by experiment id. Partition {owner} publishes it"
                 );
-                self.note_split(part, experiment);
+                self.note_split(tally, experiment);
             }
             _ => {}
         }
@@ -271,51 +277,58 @@ impl Ctx {
 
     /// Decodes, checks and applies one event, or dead-letters it with its reason.
     fn apply(&mut self, holdings: &mut Holdings, part: &mut PartitionState, msg: &Msg<'_>, now_ms: i64) {
+        let PartitionState { experiments, dedup, tally, .. } = part;
         let ev = match event::decode(msg.bytes, self.s.max_event_bytes, now_ms, self.s.max_skew_ms) {
             Ok(ev) => ev,
-            Err(reason) => return self.reject(part, msg, reason, UNKNOWN),
+            Err(reason) => return self.reject(tally, msg, reason, UNKNOWN),
         };
         let kind = kind_index(ev.kind);
         let id_hash = DedupWindow::hash(&ev.event_id);
-        if part.dedup.contains_hash(id_hash) {
-            return self.count(part, kind, DUPLICATE);
+        if dedup.contains_hash(id_hash) {
+            return self.count(tally, kind, DUPLICATE);
         }
-        if !part.experiments.contains_key(ev.experiment.as_ref()) {
-            let spec = match self.s.declared.get(ev.experiment.as_ref()) {
-                Some(r) => Some((r.spec.clone(), r.arms.clone())),
-                None => self.s.default_spec.clone().map(|s| (s, Vec::new())),
-            };
-            let Some((spec, arms)) = spec else {
-                return self.reject(part, msg, Reason::UnknownExperiment, kind);
-            };
-            if holdings.held >= self.s.max_experiments {
-                return self.reject(part, msg, Reason::TooManyExperiments, kind);
+        // The common case looks the experiment up once.
+        if let Some(entry) = experiments.get_mut(ev.experiment.as_ref()) {
+            if holdings.owners.get(ev.experiment.as_ref()).is_some_and(|&owner| owner != msg.partition) {
+                self.note_split(tally, &ev.experiment);
             }
-            let exp = match Experiment::new(spec, &arms) {
-                Ok(e) => e,
-                Err(e) => {
-                    tracing::error!(experiment = %ev.experiment, "cannot create experiment: {e}");
-                    return self.reject(part, msg, Reason::UnknownExperiment, kind);
-                }
-            };
-            part.experiments.insert(ev.experiment.to_string(), Entry::new(exp));
-            holdings.held += 1;
-            self.note_owner(holdings, part, msg.partition, &ev.experiment);
-        } else if holdings.owners.get(ev.experiment.as_ref()).is_some_and(|&owner| owner != msg.partition) {
-            self.note_split(part, &ev.experiment);
+            return self.observe(entry, dedup, tally, msg, &ev, kind, id_hash);
         }
-        let Some(entry) = part.experiments.get_mut(ev.experiment.as_ref()) else {
-            return;
+        let spec = match self.s.declared.get(ev.experiment.as_ref()) {
+            Some(r) => Some((r.spec.clone(), r.arms.clone())),
+            None => self.s.default_spec.clone().map(|s| (s, Vec::new())),
         };
+        let Some((spec, arms)) = spec else {
+            return self.reject(tally, msg, Reason::UnknownExperiment, kind);
+        };
+        if holdings.held >= self.s.max_experiments {
+            return self.reject(tally, msg, Reason::TooManyExperiments, kind);
+        }
+        let exp = match Experiment::new(spec, &arms) {
+            Ok(e) => e,
+            Err(e) => {
+                tracing::error!(experiment = %ev.experiment, "cannot create experiment: {e}");
+                return self.reject(tally, msg, Reason::UnknownExperiment, kind);
+            }
+        };
+        let entry = experiments.entry(ev.experiment.to_string()).or_insert(Entry::new(exp));
+        holdings.held += 1;
+        self.note_owner(holdings, tally, msg.partition, &ev.experiment);
+        self.observe(entry, dedup, tally, msg, &ev, kind, id_hash);
+    }
+
+    /// Applies a decoded, new event to its experiment's entry.
+    #[allow(clippy::too_many_arguments)]
+    fn observe(&mut self, entry: &mut Entry, dedup: &mut DedupWindow, tally: &mut Tally, msg: &Msg<'_>, ev: &event::Event<'_>, kind: usize, id_hash: u64) {
         let Ok(arm) = entry.exp.arm_or_add(&ev.arm) else {
-            return self.reject(part, msg, Reason::TooManyArms, kind);
+            return self.reject(tally, msg, Reason::TooManyArms, kind);
         };
         let obs = match ev.kind {
             Kind::Impression => Observation::Impression { count: ev.count },
             Kind::Reward => Observation::Reward { value: ev.reward },
         };
         if let Err(Refusal::RewardOutOfRange | Refusal::TooManyArms) = entry.exp.observe(arm, ev.ts_ms, obs) {
-            return self.reject(part, msg, Reason::RewardOutOfRange, kind);
+            return self.reject(tally, msg, Reason::RewardOutOfRange, kind);
         }
         if let Observation::Impression { count } = obs {
             entry.impressions_since = entry.impressions_since.saturating_add(count);
@@ -324,8 +337,8 @@ impl Ctx {
         if entry.first_applied.is_none() {
             entry.first_applied = Some(Instant::now());
         }
-        part.dedup.insert_hash(id_hash);
-        self.count(part, kind, APPLIED);
+        dedup.insert_hash(id_hash);
+        self.count(tally, kind, APPLIED);
     }
 }
 
@@ -624,7 +637,7 @@ impl Pipeline {
             let ids: Vec<String> = part.experiments.keys().cloned().collect();
             self.holdings.held += ids.len();
             for id in ids {
-                self.ctx.note_owner(&mut self.holdings, &mut part, p, &id);
+                self.ctx.note_owner(&mut self.holdings, &mut part.tally, p, &id);
             }
             self.partitions.insert(p, part);
         }
@@ -637,8 +650,7 @@ impl Pipeline {
                 next_offset: 0,
                 experiments: FxHashMap::default(),
                 dedup: DedupWindow::new(self.ctx.s.duplicate_window),
-                counters: Counters::default(),
-                events: [0; 9],
+                tally: Tally::default(),
                 generation: 0,
                 complete_slot: 1,
                 resume_check: None,
@@ -692,8 +704,7 @@ impl Pipeline {
             next_offset: snap.next_offset,
             experiments,
             dedup: DedupWindow::restore(self.ctx.s.duplicate_window, &snap.duplicates),
-            counters: snap.counters,
-            events,
+            tally: Tally { counters: snap.counters, events },
             generation: snap.generation,
             complete_slot: 1,
             resume_check: None,
