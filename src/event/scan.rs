@@ -8,10 +8,10 @@
 //! the two against each other on arbitrary, mutated and corpus bytes
 //! ([`fast_path_agrees`]).
 //!
-//! Speed: the message is checked as UTF-8 once, as a whole (outside strings a flat object of
-//! this shape is ASCII anyway, so this is the same as checking each string, as `serde_json`
-//! does); the end of each string is found eight bytes at a time; integers that cannot
-//! overflow are read without a check per digit.
+//! Speed: keys and the two kinds are compared with constants after a dispatch on their first
+//! letter; only the string values kept are checked as UTF-8 (outside them a flat object of
+//! this shape is ASCII, or it is refused); the end of each string is found eight bytes at a
+//! time; integers that cannot overflow are read without a check per digit.
 
 use std::borrow::Cow;
 
@@ -21,8 +21,7 @@ use super::Raw;
 /// `None` to fall back to `serde_json`, with `raw` left partly filled. (Filled in place: the
 /// struct is about 200 bytes, and moving it out cost a copy per event.)
 pub(super) fn scan<'a>(bytes: &'a [u8], raw: &mut Raw<'a>) -> Option<()> {
-    let text = std::str::from_utf8(bytes).ok()?;
-    let mut s = Scanner { b: bytes, text, i: 0 };
+    let mut s = Scanner { b: bytes, i: 0 };
     let mut seen = 0u16;
     s.ws();
     s.expect(b'{')?;
@@ -102,8 +101,6 @@ pub fn fast_path_agrees(bytes: &[u8]) -> Result<bool, String> {
 
 struct Scanner<'a> {
     b: &'a [u8],
-    /// The same bytes, known to be UTF-8.
-    text: &'a str,
     i: usize,
 }
 
@@ -213,11 +210,11 @@ impl<'a> Scanner<'a> {
         Some((start, end))
     }
 
-    /// A string without escapes or control characters, borrowed.
+    /// A string without escapes or control characters, borrowed; valid UTF-8 only.
     #[inline(always)]
     fn plain_string(&mut self) -> Option<&'a str> {
         let (start, end) = self.plain_span()?;
-        self.text.get(start..end)
+        std::str::from_utf8(&self.b[start..end]).ok()
     }
 
     /// `-?(0|[1-9][0-9]*)` that fits an i64, not followed by a fraction or an exponent:

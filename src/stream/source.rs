@@ -102,7 +102,7 @@ pub fn commit<C: Consumer<SourceContext>>(consumer: &C, topic: &str, offsets: &[
 /// Messages handed to the pipeline under one lock. The first of a batch is waited for (up to
 /// 100 ms, and never past the next publish round); the rest are only those the client already
 /// holds (`poll` with no wait).
-const BATCH: usize = 64;
+const BATCH: usize = 256;
 
 /// Runs until shutdown: read, apply, publish on the interval, snapshot on the interval. On
 /// shutdown: publish, snapshot, commit, and leave the group.
