@@ -63,10 +63,12 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
         }
         c.create_with_context(DeliveryWatch::default()).context("cannot create the producer")?
     };
+    let sink = Arc::new(sink);
+    spawn_delivery_server(&sink)?;
     let pipeline = Arc::new(Mutex::new(Pipeline::new(
         settings.clone(),
         served.clone(),
-        Arc::new(sink),
+        sink,
         state_reader,
         state_partitions,
     )));
@@ -96,6 +98,24 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
     tokio::task::spawn_blocking(move || source::run(consumer, pipeline, stop))
         .await
         .context("the consumer thread failed")?;
+    Ok(())
+}
+
+/// Serves the producer's delivery reports every 10 ms, until the producer is dropped: a
+/// delivered message is let go of only once its report is served, and a publish round or a
+/// snapshot can send thousands at once.
+fn spawn_delivery_server(sink: &Arc<pipeline::Sink>) -> anyhow::Result<()> {
+    let producer = Arc::downgrade(sink);
+    std::thread::Builder::new()
+        .name("apportion-deliveries".into())
+        .spawn(move || {
+            while let Some(sink) = producer.upgrade() {
+                pipeline::serve_deliveries(&sink);
+                drop(sink);
+                std::thread::sleep(Duration::from_millis(10));
+            }
+        })
+        .context("cannot start the delivery report thread")?;
     Ok(())
 }
 

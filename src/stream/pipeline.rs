@@ -42,10 +42,10 @@ impl ProducerContext for DeliveryWatch {
     }
 }
 
-/// The producer of weights, snapshots and dead letters. Its delivery reports are served by the
-/// consumer thread between messages ([`Pipeline::serve_deliveries`]), while it waits for a full
-/// queue to drain, and by `flush`: no thread of its own, which would wake every 100 ms and
-/// spin through the last millisecond of each wait.
+/// The producer of weights, snapshots and dead letters. Its delivery reports are served every
+/// 10 ms by a small thread ([`serve_deliveries`], started in `stream::run`), while a full queue
+/// drains, and by `flush`. (The rdkafka crate's `ThreadedProducer` polls with a 100 ms timeout
+/// that spins through the last millisecond of each wait: about 1 % of a core.)
 pub type Sink = BaseProducer<DeliveryWatch>;
 
 /// Called with each state-topic message read: offset, key, value.
@@ -590,12 +590,6 @@ impl Pipeline {
         }
     }
 
-    /// Serves the producer's pending delivery reports without waiting. Called between
-    /// messages, with the publish and snapshot checks.
-    pub fn serve_deliveries(&self) {
-        self.ctx.sink.poll(Duration::ZERO);
-    }
-
     pub fn snapshot_due(&mut self) -> Vec<(i32, i64)> {
         if self.last_snapshot.elapsed() < self.ctx.s.snapshot_interval {
             return Vec::new();
@@ -850,6 +844,20 @@ impl Pipeline {
                 Some(Err(e)) => tracing::warn!("reading {topic}/{sp}: {e}"),
                 None => {}
             }
+        }
+    }
+}
+
+/// Serves the producer's pending delivery reports without waiting. A delivered message stays
+/// in memory until its report is served, so all of them are: one `poll` serves at most one
+/// report (of one or more messages), and the producer's count of messages not yet done with
+/// stops falling once none is left. Bounded, so a flood of reports cannot hold up the caller.
+pub fn serve_deliveries(sink: &Sink) {
+    for _ in 0..256 {
+        let before = sink.in_flight_count();
+        sink.poll(Duration::ZERO);
+        if sink.in_flight_count() >= before {
+            break;
         }
     }
 }

@@ -159,7 +159,6 @@ pub fn run(consumer: BaseConsumer<SourceContext>, pipeline: Arc<Mutex<Pipeline>>
             }
             p.export_counts();
             wall_ms = now_ms();
-            p.serve_deliveries();
             p.publish_due(false);
             wait_at_most = p.until_publish().clamp(Duration::from_millis(1), Duration::from_millis(100));
             p.snapshot_due()
