@@ -6,9 +6,11 @@
 //! 1. **Fill**: one input topic with `--events` events over several partitions, experiments and
 //!    arms, produced in large batches so that the broker can serve reads quickly.
 //! 2. **Throughput**, alternating: (a) a bare consumer (`pipeline_bench bare`, a child process
-//!    in its own group) that only reads and counts; (b) `apportion run` with metrics and
-//!    publishing on, watched through `/metrics`. Each round has a fresh group (and, for the
-//!    sidecar, fresh output topics) and reads the same topic from the start.
+//!    in its own group) that only reads and counts; (c, unless `--skip-reading-floor`) the same
+//!    consumer also reading every payload byte, the least any consumer of the events does;
+//!    (b) `apportion run` with metrics and publishing on, watched through `/metrics`. Each
+//!    round has a fresh group (and, for the sidecar, fresh output topics) and reads the same
+//!    topic from the start.
 //! 3. **Latency**: the sidecar on a fresh topic at a steady offered rate, while this process reads
 //!    the weights topic: how long after an impression was sent did a published weights message
 //!    first count it.
@@ -123,6 +125,10 @@ struct AllArgs {
     /// Skip the latency phase.
     #[arg(long)]
     skip_latency: bool,
+    /// Skip the third consumer of each throughput round (c: a bare consumer that also reads
+    /// every payload byte).
+    #[arg(long)]
+    skip_reading_floor: bool,
     /// A librdkafka property for every sidecar started, `KEY=VALUE` (repeatable), e.g.
     /// `fetch.wait.max.ms=10`. Without it the sidecar runs with its defaults.
     #[arg(long = "sidecar-client", value_name = "KEY=VALUE")]
@@ -142,6 +148,9 @@ struct BareArgs {
     /// Give up after this many seconds.
     #[arg(long, default_value_t = 600)]
     timeout: u64,
+    /// Also read every byte of every payload (a floor for any consumer that looks at events).
+    #[arg(long)]
+    read_payloads: bool,
 }
 
 fn main() -> ExitCode {
@@ -184,6 +193,7 @@ fn bare(a: BareArgs) -> anyhow::Result<()> {
     let deadline = Instant::now() + Duration::from_secs(a.timeout);
     let mut out = std::io::stdout().lock();
     let (mut count, mut bytes) = (0u64, 0u64);
+    let mut folded = 0u8;
     let mut errors = 0u32;
     let mut last_report = Instant::now();
     while count < a.expect {
@@ -197,7 +207,12 @@ fn bare(a: BareArgs) -> anyhow::Result<()> {
                     out.flush()?;
                 }
                 count += 1;
-                bytes += m.payload().map_or(0, |p| p.len() as u64);
+                if let Some(p) = m.payload() {
+                    bytes += p.len() as u64;
+                    if a.read_payloads {
+                        folded = p.iter().fold(folded, |x, &b| x ^ b);
+                    }
+                }
             }
             Some(Err(e)) => {
                 errors += 1;
@@ -212,7 +227,7 @@ fn bare(a: BareArgs) -> anyhow::Result<()> {
             last_report = Instant::now();
         }
     }
-    writeln!(out, "done {} {count} {bytes}", unix_ns())?;
+    writeln!(out, "done {} {count} {bytes} {folded}", unix_ns())?;
     out.flush()?;
     // Stay alive so that the parent can read this process's CPU time and peak memory.
     let mut sink = Vec::new();
@@ -650,10 +665,13 @@ impl Env<'_> {
     }
 }
 
-fn round_bare(env: &Env<'_>, topic: &str, n: u64, round: u32) -> anyhow::Result<Round> {
+/// A bare consumer round: (a) reading and counting, or, with `read_payloads`, (c) also reading
+/// every payload byte.
+fn round_bare(env: &Env<'_>, topic: &str, n: u64, round: u32, read_payloads: bool) -> anyhow::Result<Round> {
     let exe = std::env::current_exe().context("cannot find this program's path")?;
     let child = Command::new(exe)
         .args(["bare", "--brokers", &env.a.brokers, "--topic", topic])
+        .args(if read_payloads { &["--read-payloads"][..] } else { &[][..] })
         .args(["--group", &format!("bench-bare-{}", suffix()), "--expect", &n.to_string()])
         .args(["--timeout", &env.a.timeout.to_string()])
         .stdin(Stdio::piped())
@@ -697,7 +715,7 @@ fn round_bare(env: &Env<'_>, topic: &str, n: u64, round: u32) -> anyhow::Result<
                         drop(g.child.stdin.take());
                         g.stop(Duration::from_secs(10));
                         return Ok(Round {
-                            who: "a: bare consumer",
+                            who: if read_payloads { "c: bare consumer reading payloads" } else { "a: bare consumer" },
                             round,
                             events,
                             window_s: (done_ns.saturating_sub(first)) as f64 / 1e9,
@@ -1269,9 +1287,15 @@ fn all(a: AllArgs) -> anyhow::Result<()> {
     let mut rounds = Vec::new();
     for r in 1..=a.rounds {
         progress("throughput", format!("round {r}/{}: a, bare consumer", a.rounds));
-        let x = round_bare(&env, &topic, a.events, r)?;
+        let x = round_bare(&env, &topic, a.events, r, false)?;
         progress("throughput", format!("a{r}: {:.0} events/s, {:.2} CPU s", x.rate(), x.cpu_s));
         rounds.push(x);
+        if !a.skip_reading_floor {
+            progress("throughput", format!("round {r}/{}: c, bare consumer reading payloads", a.rounds));
+            let x = round_bare(&env, &topic, a.events, r, true)?;
+            progress("throughput", format!("c{r}: {:.0} events/s, {:.2} CPU s", x.rate(), x.cpu_s));
+            rounds.push(x);
+        }
         progress("throughput", format!("round {r}/{}: b, apportion run", a.rounds));
         let x = round_sidecar(&env, &topic, a.events, r)?;
         progress("throughput", format!("b{r}: {:.0} events/s, {:.2} CPU s", x.rate(), x.cpu_s));
@@ -1343,6 +1367,17 @@ fn summary(a: &AllArgs, sc: &Scenario, fill_s: f64, rounds: &[Round], lat: Optio
         med("b", &|r| r.peak_mib),
         med("b", &|r| r.peak_mib) / med("a", &|r| r.peak_mib)
     );
+    if rounds.iter().any(|r| r.who.starts_with('c')) {
+        let (cc, wc) = (med("c", &Round::cpu_per_million), med("c", &Round::cpu_window_per_million));
+        let _ = writeln!(
+            s,
+            "\nc: a bare consumer that also reads every payload byte (the least any consumer of the events does): \
+             {:.0} events/s, {cc:.2} CPU s / M events ({wc:.2} in window); b/c = {:.2} ({:.2} in window).",
+            med("c", &Round::rate),
+            cb / cc,
+            wb / wc
+        );
+    }
     if let Some(l) = lat {
         let target = a.publish_interval * 1000.0 + 50.0;
         let _ = writeln!(

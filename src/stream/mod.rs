@@ -101,9 +101,10 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
     Ok(())
 }
 
-/// Serves the producer's delivery reports every 10 ms, until the producer is dropped: a
+/// Serves the producer's delivery reports every 50 ms, until the producer is dropped: a
 /// delivered message is let go of only once its report is served, and a publish round or a
-/// snapshot can send thousands at once.
+/// snapshot can send thousands at once. (Every 10 ms cost about 3 % of the sidecar's CPU at
+/// 140 000 events/s in a profile; nothing needs the reports sooner.)
 fn spawn_delivery_server(sink: &Arc<pipeline::Sink>) -> anyhow::Result<()> {
     let producer = Arc::downgrade(sink);
     std::thread::Builder::new()
@@ -112,7 +113,7 @@ fn spawn_delivery_server(sink: &Arc<pipeline::Sink>) -> anyhow::Result<()> {
             while let Some(sink) = producer.upgrade() {
                 pipeline::serve_deliveries(&sink);
                 drop(sink);
-                std::thread::sleep(Duration::from_millis(10));
+                std::thread::sleep(Duration::from_millis(50));
             }
         })
         .context("cannot start the delivery report thread")?;
