@@ -444,7 +444,7 @@ impl Pipeline {
                             published += 1;
                             // A round of thousands of experiments takes a while; what the
                             // broker has acknowledged meanwhile is let go of as it goes.
-                            if published % 256 == 0 {
+                            if published.is_multiple_of(256) {
                                 serve_deliveries(&self.ctx.sink);
                             }
                         }
