@@ -102,10 +102,10 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
 }
 
 /// Serves the producer's delivery reports every 10 ms, until the producer is dropped: a
-/// delivered message is let go of only once its report is served, and a snapshot can send
-/// thousands at once (publish rounds also serve them as they go). This costs about 3 % of the
-/// sidecar's CPU at 140 000 events/s (a perf profile); every 20 or 50 ms instead raised the
-/// peak memory of 10 000 experiments × 10 arms from 92.6 to 97–98 MiB, near the 100 MB bound.
+/// delivered message is let go of only once its report is served, and a publish round or a
+/// snapshot can send thousands at once. This costs about 3 % of the sidecar's CPU at 140 000
+/// events/s (a perf profile); every 20 or 50 ms instead raised the peak memory of 10 000
+/// experiments × 10 arms from 92.6 to 97–98 MiB, near the 100 MB bound.
 fn spawn_delivery_server(sink: &Arc<pipeline::Sink>) -> anyhow::Result<()> {
     let producer = Arc::downgrade(sink);
     std::thread::Builder::new()

@@ -43,7 +43,7 @@ impl ProducerContext for DeliveryWatch {
 }
 
 /// The producer of weights, snapshots and dead letters. Its delivery reports are served every
-/// 10 ms by a small thread, every 256 messages of a publish round ([`serve_deliveries`], started in `stream::run`), while a full queue
+/// 10 ms by a small thread ([`serve_deliveries`], started in `stream::run`), while a full queue
 /// drains, and by `flush`. (The rdkafka crate's `ThreadedProducer` polls with a 100 ms timeout
 /// that spins through the last millisecond of each wait: about 1 % of a core.)
 pub type Sink = BaseProducer<DeliveryWatch>;
@@ -413,7 +413,6 @@ impl Pipeline {
         let now = now_ms();
         let metrics = self.ctx.metrics();
         let mut updates: Vec<(String, ExperimentRow)> = Vec::new();
-        let mut published = 0usize;
         for (&partition, part) in self.partitions.iter_mut() {
             for (id, e) in part.experiments.iter_mut() {
                 if self.holdings.owners.get(id) != Some(&partition) {
@@ -441,12 +440,6 @@ impl Pipeline {
                         Ok(bytes) => {
                             let record = BaseRecord::to(&s.weights_topic).key(id.as_bytes()).payload(&bytes[..]);
                             send_with_retry(&self.ctx.sink, record);
-                            published += 1;
-                            // A round of thousands of experiments takes a while; what the
-                            // broker has acknowledged meanwhile is let go of as it goes.
-                            if published.is_multiple_of(256) {
-                                serve_deliveries(&self.ctx.sink);
-                            }
                         }
                         Err(err) => tracing::error!(experiment = %id, "cannot encode weights: {err}"),
                     }
