@@ -58,9 +58,15 @@ impl DedupWindow {
     }
 
     pub fn insert_hash(&mut self, h: u64) {
-        if self.contains_hash(h) {
-            return;
+        if !self.contains_hash(h) {
+            self.insert_new(h);
         }
+    }
+
+    /// For a hash that [`DedupWindow::contains_hash`] has just found absent: the hot path
+    /// checks before applying an event and inserts after, and need not look twice.
+    pub fn insert_new(&mut self, h: u64) {
+        debug_assert!(!self.contains_hash(h), "insert_new of a hash the window holds");
         if self.current.len() >= self.capacity {
             // The older generation goes; its set's memory is reused for the next one.
             std::mem::swap(&mut self.older, &mut self.current);

@@ -337,7 +337,7 @@ impl Ctx {
         if entry.first_applied.is_none() {
             entry.first_applied = Some(Instant::now());
         }
-        dedup.insert_hash(id_hash);
+        dedup.insert_new(id_hash);
         self.count(tally, kind, APPLIED);
     }
 }
