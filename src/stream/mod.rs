@@ -7,6 +7,7 @@
 //! ```
 
 pub mod dedup;
+pub mod fetch;
 pub mod pipeline;
 pub mod publish;
 pub mod snapshot;
@@ -77,6 +78,7 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
         metrics: served.metrics.clone(),
         served: served.clone(),
         input_topic: settings.input_topic.clone(),
+        fetch: Mutex::new(None),
     };
     let mut c = client_config(&cfg);
     c.set("group.id", &cfg.kafka.group_id)
@@ -90,12 +92,14 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
         }
     }
     let consumer: BaseConsumer<SourceContext> = c.create_with_context(ctx).context("cannot create the consumer")?;
+    let fetch = Arc::new(fetch::FetchQueue::new(&consumer));
+    *consumer.context().fetch.lock().unwrap_or_else(|p| p.into_inner()) = Some(fetch.clone());
     consumer
         .subscribe(&[&settings.input_topic])
         .with_context(|| format!("cannot subscribe to {}", settings.input_topic))?;
     tracing::info!(topic = %settings.input_topic, group = %cfg.kafka.group_id, "consuming");
     let stop = shutdown.clone();
-    tokio::task::spawn_blocking(move || source::run(consumer, pipeline, stop))
+    tokio::task::spawn_blocking(move || source::run(consumer, fetch, pipeline, stop))
         .await
         .context("the consumer thread failed")?;
     Ok(())

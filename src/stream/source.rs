@@ -1,9 +1,12 @@
-//! The consumer thread: polls the input topic, hands each message to the pipeline, and takes
-//! partitions over or hands them back in the rebalance callback.
+//! The consumer thread: takes the input topic's messages in batches, hands them to the
+//! pipeline, and takes partitions over or hands them back in the rebalance callback.
 //!
-//! The callback runs inside `poll`, on this thread, between two messages: on assignment it
-//! loads each partition's snapshot and starts reading at the snapshot's offset, whatever the
-//! group's committed offset says; on revocation it snapshots the partition before letting go.
+//! The messages come from a [`FetchQueue`] that every assigned partition is routed to; the
+//! consumer's own queue, served by `poll` between batches, keeps the rebalances, errors and
+//! statistics. The callback runs inside that `poll`, on this thread, between two batches: on
+//! assignment it loads each partition's snapshot, routes the partition to the fetch queue and
+//! starts reading at the snapshot's offset, whatever the group's committed offset says; on
+//! revocation it snapshots the partition before letting go.
 
 use std::sync::{Arc, Mutex, MutexGuard};
 use std::time::Duration;
@@ -14,6 +17,7 @@ use rdkafka::statistics::Statistics;
 use rdkafka::types::RDKafkaRespErr;
 use rdkafka::{ClientContext, Offset, TopicPartitionList};
 
+use super::fetch::{Batch, FetchQueue};
 use super::pipeline::{now_ms, Pipeline};
 use crate::shutdown::Shutdown;
 use crate::telemetry::http::Served;
@@ -24,6 +28,9 @@ pub struct SourceContext {
     pub metrics: Arc<Metrics>,
     pub served: Arc<Served>,
     pub input_topic: String,
+    /// Where assigned partitions are routed: set once the consumer exists, before it
+    /// subscribes; taken out again before the consumer is dropped.
+    pub fetch: Mutex<Option<Arc<FetchQueue>>>,
 }
 
 fn lock(p: &Mutex<Pipeline>) -> MutexGuard<'_, Pipeline> {
@@ -49,8 +56,12 @@ impl ConsumerContext for SourceContext {
         match err {
             RDKafkaRespErr::RD_KAFKA_RESP_ERR__ASSIGN_PARTITIONS => {
                 let offsets = lock(&self.pipeline).assign(&parts);
+                let fetch = self.fetch.lock().ok().and_then(|f| f.clone());
                 let mut take = TopicPartitionList::new();
                 for (p, off) in offsets {
+                    if !fetch.as_ref().is_some_and(|q| q.route(consumer, &self.input_topic, p)) {
+                        tracing::error!(partition = p, "cannot route the partition to the fetch queue; its messages come through poll");
+                    }
                     if let Err(e) = take.add_partition_offset(&self.input_topic, p, off) {
                         tracing::error!(partition = p, "cannot set the start offset: {e}");
                     }
@@ -99,20 +110,30 @@ pub fn commit<C: Consumer<SourceContext>>(consumer: &C, topic: &str, offsets: &[
     }
 }
 
-/// Messages handed to the pipeline under one lock. The first of a batch is waited for (up to
-/// 100 ms, and never past the next publish round); the rest are only those the client already
-/// holds (`poll` with no wait).
+/// The consumer's errors are logged, at most 20 in a row (the count starts again when idle).
+fn log_error(logged: &mut u32, e: &dyn std::fmt::Display) {
+    if *logged < 20 {
+        tracing::warn!("consumer: {e}");
+        *logged += 1;
+    }
+}
+
+/// Messages handed to the pipeline under one lock: those the fetch queue already holds, up to
+/// this many; when it holds none, the first to arrive within 100 ms (and never past the next
+/// publish round).
 const BATCH: usize = 256;
 
 /// Runs until shutdown: read, apply, publish on the interval, snapshot on the interval. On
 /// shutdown: publish, snapshot, commit, and leave the group.
 ///
-/// Messages are applied in batches. A rebalance callback runs inside `poll` and makes it return
-/// nothing, which ends the batch; the messages polled before it are applied after it. That is
-/// safe: a partition just handed back is no longer in the pipeline, so its messages are passed
-/// over (its snapshot, written in the callback, ends before them, so its next owner reads them),
-/// and a partition just taken over cannot have messages polled before it was assigned.
-pub fn run(consumer: BaseConsumer<SourceContext>, pipeline: Arc<Mutex<Pipeline>>, shutdown: Shutdown) {
+/// Each turn serves the consumer's own queue first (rebalance callbacks, errors, statistics),
+/// then takes a batch from the fetch queue and applies it. A message of a partition handed back
+/// in a callback may still be in the fetch queue or the batch; that is safe: the partition is no
+/// longer in the pipeline, so its messages are passed over (its snapshot, written in the
+/// callback, ends before them, so its next owner reads them), and librdkafka drops most of them
+/// itself (they belong to an outdated fetch). A partition just taken over has no messages before
+/// its assignment.
+pub fn run(consumer: BaseConsumer<SourceContext>, fetch: Arc<FetchQueue>, pipeline: Arc<Mutex<Pipeline>>, shutdown: Shutdown) {
     let topic = consumer.context().input_topic.clone();
     let mut errors_logged = 0u32;
     // Publishing and snapshots are due on a clock, and event times are checked against the wall
@@ -120,40 +141,40 @@ pub fn run(consumer: BaseConsumer<SourceContext>, pipeline: Arc<Mutex<Pipeline>>
     // The wall clock may thus lag by up to one batch's time, which only makes the future-time
     // check (`limits.max_clock_skew_seconds`, minutes) stricter by that much.
     let mut wall_ms = now_ms();
-    let mut batch = Vec::with_capacity(BATCH);
+    let mut batch = Batch::with_capacity(BATCH);
+    // Messages `poll` returns: only those of a partition that could not be routed.
+    let mut strays = Vec::new();
     let mut seeks: Vec<(i32, i64)> = Vec::new();
     let mut wait_at_most = Duration::from_millis(100);
     while !shutdown.is_triggered() {
-        let mut wait = wait_at_most;
-        while batch.len() < BATCH {
-            match consumer.poll(wait) {
-                Some(Ok(m)) => batch.push(m),
-                Some(Err(e)) => {
-                    if errors_logged < 20 {
-                        tracing::warn!("consumer: {e}");
-                        errors_logged += 1;
-                    }
-                    break;
-                }
-                None => {
-                    if batch.is_empty() {
-                        errors_logged = 0;
-                    }
-                    break;
-                }
+        while strays.len() < BATCH {
+            match consumer.poll(Duration::ZERO) {
+                Some(Ok(m)) => strays.push(m),
+                Some(Err(e)) => log_error(&mut errors_logged, &e),
+                None => break,
             }
-            wait = Duration::ZERO;
+        }
+        let wait = if strays.is_empty() { wait_at_most } else { Duration::ZERO };
+        if fetch.take(&mut batch, wait) == 0 && strays.is_empty() {
+            errors_logged = 0;
         }
         let offsets = {
             let mut p = lock(&pipeline);
-            for m in batch.drain(..) {
-                let part = m.partition();
+            let records = strays.iter().map(|m| (m.partition(), m.offset(), m.key(), m.payload()));
+            let fetched = batch.iter().filter_map(|m| match m.error() {
+                None => Some((m.partition(), m.offset(), m.key(), m.payload())),
+                Some(e) => {
+                    log_error(&mut errors_logged, &e);
+                    None
+                }
+            });
+            for (part, offset, key, payload) in records.chain(fetched) {
                 // Once a partition is to be read again from further back, the rest of what
                 // was fetched for it is stale.
                 if seeks.iter().any(|&(s, _)| s == part) {
                     continue;
                 }
-                if let Some(from) = p.on_message(part, m.offset(), m.key(), m.payload(), wall_ms) {
+                if let Some(from) = p.on_message(part, offset, key, payload, wall_ms) {
                     seeks.push((part, from));
                 }
             }
@@ -163,6 +184,8 @@ pub fn run(consumer: BaseConsumer<SourceContext>, pipeline: Arc<Mutex<Pipeline>>
             wait_at_most = p.until_publish().clamp(Duration::from_millis(1), Duration::from_millis(100));
             p.snapshot_due()
         };
+        strays.clear();
+        batch.clear();
         for (p, from) in seeks.drain(..) {
             if let Err(e) = consumer.seek(&topic, p, Offset::Offset(from), Duration::from_secs(10)) {
                 tracing::error!(partition = p, "cannot read the partition again from offset {from}: {e}");
@@ -180,4 +203,10 @@ pub fn run(consumer: BaseConsumer<SourceContext>, pipeline: Arc<Mutex<Pipeline>>
     };
     commit(&consumer, &topic, &offsets, CommitMode::Sync);
     consumer.unsubscribe();
+    // The fetch queue goes before the consumer does (librdkafka's handles before its client).
+    drop(batch);
+    if let Ok(mut f) = consumer.context().fetch.lock() {
+        f.take();
+    }
+    drop(fetch);
 }
