@@ -8,7 +8,9 @@
 //! 2. **Throughput**, alternating: (a) a bare consumer (`pipeline_bench bare`, a child process
 //!    in its own group) that only reads and counts; (c, unless `--skip-reading-floor`) the same
 //!    consumer also reading every payload byte, the least any consumer of the events does;
-//!    (b) `apportion run` with metrics and publishing on, watched through `/metrics`. Each
+//!    (d, unless `--skip-batch-floor`) a bare consumer taking messages with librdkafka's batch
+//!    call, the way the sidecar takes them; (b) `apportion run` with metrics and publishing on,
+//!    watched through `/metrics`. The bare consumers read no clock per message. Each
 //!    round has a fresh group (and, for the sidecar, fresh output topics) and reads the same
 //!    topic from the start.
 //! 3. **Latency**: the sidecar on a fresh topic at a steady offered rate, while this process reads
@@ -47,7 +49,8 @@ use rand::{Rng, SeedableRng};
 use rdkafka::admin::{AdminClient, AdminOptions, NewTopic, TopicReplication};
 use rdkafka::client::DefaultClientContext;
 use rdkafka::config::ClientConfig;
-use rdkafka::consumer::{BaseConsumer, Consumer};
+use apportion::stream::fetch::{Batch, FetchQueue};
+use rdkafka::consumer::{BaseConsumer, Consumer, ConsumerContext, Rebalance};
 use rdkafka::message::Message;
 use rdkafka::producer::{BaseProducer, BaseRecord, DeliveryResult, Producer, ProducerContext};
 use rdkafka::types::RDKafkaErrorCode;
@@ -129,6 +132,10 @@ struct AllArgs {
     /// every payload byte).
     #[arg(long)]
     skip_reading_floor: bool,
+    /// Skip the fourth consumer of each throughput round (d: a bare consumer taking messages
+    /// with librdkafka's batch call, as the sidecar does).
+    #[arg(long)]
+    skip_batch_floor: bool,
     /// A librdkafka property for every sidecar started, `KEY=VALUE` (repeatable), e.g.
     /// `fetch.wait.max.ms=10`. Without it the sidecar runs with its defaults.
     #[arg(long = "sidecar-client", value_name = "KEY=VALUE")]
@@ -151,6 +158,10 @@ struct BareArgs {
     /// Also read every byte of every payload (a floor for any consumer that looks at events).
     #[arg(long)]
     read_payloads: bool,
+    /// Take messages as the sidecar does: partitions routed to a queue of their own, read with
+    /// librdkafka's batch call (`apportion::stream::fetch`).
+    #[arg(long)]
+    batch: bool,
 }
 
 fn main() -> ExitCode {
@@ -187,49 +198,143 @@ fn progress(phase: &str, msg: impl std::fmt::Display) {
 // ---------------------------------------------------------------------------------------------
 // The bare consumer (child process).
 
-fn bare(a: BareArgs) -> anyhow::Result<()> {
-    let c: BaseConsumer = consumer_config(&a.brokers, &a.group).create().context("cannot create the consumer")?;
-    c.subscribe(&[&a.topic]).with_context(|| format!("cannot subscribe to {}", a.topic))?;
-    let deadline = Instant::now() + Duration::from_secs(a.timeout);
-    let mut out = std::io::stdout().lock();
-    let (mut count, mut bytes) = (0u64, 0u64);
-    let mut folded = 0u8;
-    let mut errors = 0u32;
-    let mut last_report = Instant::now();
-    while count < a.expect {
-        if Instant::now() > deadline {
-            bail!("bare consumer: {count} of {} events read from {} within {}s", a.expect, a.topic, a.timeout);
+/// What a bare consumer has read so far.
+struct Tally {
+    count: u64,
+    bytes: u64,
+    folded: u8,
+    read_payloads: bool,
+}
+
+impl Tally {
+    #[inline(always)]
+    fn see(&mut self, payload: Option<&[u8]>, out: &mut impl Write) -> anyhow::Result<()> {
+        if self.count == 0 {
+            writeln!(out, "first {}", unix_ns())?;
+            out.flush()?;
         }
-        match c.poll(Duration::from_millis(100)) {
-            Some(Ok(m)) => {
-                if count == 0 {
-                    writeln!(out, "first {}", unix_ns())?;
-                    out.flush()?;
-                }
-                count += 1;
-                if let Some(p) = m.payload() {
-                    bytes += p.len() as u64;
-                    if a.read_payloads {
-                        folded = p.iter().fold(folded, |x, &b| x ^ b);
-                    }
+        self.count += 1;
+        if let Some(p) = payload {
+            self.bytes += p.len() as u64;
+            if self.read_payloads {
+                self.folded = p.iter().fold(self.folded, |x, &b| x ^ b);
+            }
+        }
+        Ok(())
+    }
+}
+
+/// Routes every partition it is assigned to the fetch queue, before the client assigns it
+/// (the crate's own rebalance handling does the assigning).
+struct Router {
+    fetch: Mutex<Option<Arc<FetchQueue>>>,
+}
+
+impl ClientContext for Router {}
+
+impl ConsumerContext for Router {
+    fn pre_rebalance(&self, consumer: &BaseConsumer<Self>, rebalance: &Rebalance<'_>) {
+        if let (Rebalance::Assign(tpl), Ok(fetch)) = (rebalance, self.fetch.lock()) {
+            for e in tpl.elements() {
+                if !fetch.as_ref().is_some_and(|q| q.route(consumer, e.topic(), e.partition())) {
+                    eprintln!("bare consumer: cannot route {} [{}]", e.topic(), e.partition());
                 }
             }
-            Some(Err(e)) => {
-                errors += 1;
-                if errors <= 10 {
-                    eprintln!("bare consumer: {e}");
-                }
-            }
-            None => {}
-        }
-        if last_report.elapsed() >= Duration::from_secs(3) {
-            progress("bare", format!("{count}/{} events read", a.expect));
-            last_report = Instant::now();
         }
     }
-    writeln!(out, "done {} {count} {bytes} {folded}", unix_ns())?;
+}
+
+/// Clock reads are checked once every this many messages (and whenever nothing came), so
+/// that the floor pays for no clock reads of its own per message.
+const CHECK_EVERY: u64 = 1024;
+
+fn bare(a: BareArgs) -> anyhow::Result<()> {
+    let deadline = Instant::now() + Duration::from_secs(a.timeout);
+    let mut out = std::io::stdout().lock();
+    let mut t = Tally { count: 0, bytes: 0, folded: 0, read_payloads: a.read_payloads };
+    let mut errors = 0u32;
+    let mut last_report = Instant::now();
+    let mut checked_at = 0u64;
+    let mut check = |t: &Tally, idle: bool| -> anyhow::Result<()> {
+        if !idle && t.count < checked_at + CHECK_EVERY {
+            return Ok(());
+        }
+        checked_at = t.count;
+        if Instant::now() > deadline {
+            bail!("bare consumer: {} of {} events read from {} within {}s", t.count, a.expect, a.topic, a.timeout);
+        }
+        if last_report.elapsed() >= Duration::from_secs(3) {
+            progress("bare", format!("{}/{} events read", t.count, a.expect));
+            last_report = Instant::now();
+        }
+        Ok(())
+    };
+    let mut error = |e: &dyn std::fmt::Display| {
+        errors += 1;
+        if errors <= 10 {
+            eprintln!("bare consumer: {e}");
+        }
+    };
+    if a.batch {
+        let c: BaseConsumer<Router> = consumer_config(&a.brokers, &a.group)
+            .create_with_context(Router { fetch: Mutex::new(None) })
+            .context("cannot create the consumer")?;
+        let fetch = Arc::new(FetchQueue::new(&c));
+        *c.context().fetch.lock().map_err(|_| anyhow!("poisoned"))? = Some(fetch.clone());
+        c.subscribe(&[&a.topic]).with_context(|| format!("cannot subscribe to {}", a.topic))?;
+        let mut batch = Batch::with_capacity(256);
+        while t.count < a.expect {
+            // Rebalances and errors; messages only of a partition that could not be routed.
+            let mut idle = true;
+            while let Some(r) = c.poll(Duration::ZERO) {
+                match r {
+                    Ok(m) => t.see(m.payload(), &mut out)?,
+                    Err(e) => error(&e),
+                }
+                idle = false;
+            }
+            if fetch.take(&mut batch, Duration::from_millis(100)) > 0 {
+                idle = false;
+            }
+            for m in batch.iter() {
+                match m.error() {
+                    None => t.see(m.payload(), &mut out)?,
+                    Some(e) => error(&e),
+                }
+            }
+            batch.clear();
+            check(&t, idle)?;
+        }
+        drop(batch);
+        c.context().fetch.lock().map_err(|_| anyhow!("poisoned"))?.take();
+        drop(fetch);
+        finish(&t, &mut out)
+    } else {
+        let c: BaseConsumer = consumer_config(&a.brokers, &a.group).create().context("cannot create the consumer")?;
+        c.subscribe(&[&a.topic]).with_context(|| format!("cannot subscribe to {}", a.topic))?;
+        while t.count < a.expect {
+            let idle = match c.poll(Duration::from_millis(100)) {
+                Some(Ok(m)) => {
+                    t.see(m.payload(), &mut out)?;
+                    false
+                }
+                Some(Err(e)) => {
+                    error(&e);
+                    true
+                }
+                None => true,
+            };
+            check(&t, idle)?;
+        }
+        finish(&t, &mut out)
+    }
+}
+
+/// Reports the end, then stays alive so that the parent can read this process's CPU time and
+/// peak memory.
+fn finish(t: &Tally, out: &mut impl Write) -> anyhow::Result<()> {
+    writeln!(out, "done {} {} {} {}", unix_ns(), t.count, t.bytes, t.folded)?;
     out.flush()?;
-    // Stay alive so that the parent can read this process's CPU time and peak memory.
     let mut sink = Vec::new();
     let _ = std::io::stdin().read_to_end(&mut sink);
     Ok(())
@@ -665,13 +770,37 @@ impl Env<'_> {
     }
 }
 
-/// A bare consumer round: (a) reading and counting, or, with `read_payloads`, (c) also reading
-/// every payload byte.
-fn round_bare(env: &Env<'_>, topic: &str, n: u64, round: u32, read_payloads: bool) -> anyhow::Result<Round> {
+/// The bare consumers of a throughput round.
+#[derive(Clone, Copy, PartialEq)]
+enum Floor {
+    /// (a) `poll`, reading and counting.
+    Plain,
+    /// (c) `poll`, also reading every payload byte.
+    Reading,
+    /// (d) the batch call on a queue of its own, as the sidecar takes messages.
+    Batched,
+}
+
+impl Floor {
+    fn who(self) -> &'static str {
+        match self {
+            Floor::Plain => "a: bare consumer",
+            Floor::Reading => "c: bare consumer reading payloads",
+            Floor::Batched => "d: bare consumer, batch call",
+        }
+    }
+}
+
+/// A bare consumer round.
+fn round_bare(env: &Env<'_>, topic: &str, n: u64, round: u32, floor: Floor) -> anyhow::Result<Round> {
     let exe = std::env::current_exe().context("cannot find this program's path")?;
     let child = Command::new(exe)
         .args(["bare", "--brokers", &env.a.brokers, "--topic", topic])
-        .args(if read_payloads { &["--read-payloads"][..] } else { &[][..] })
+        .args(match floor {
+            Floor::Plain => &[][..],
+            Floor::Reading => &["--read-payloads"][..],
+            Floor::Batched => &["--batch"][..],
+        })
         .args(["--group", &format!("bench-bare-{}", suffix()), "--expect", &n.to_string()])
         .args(["--timeout", &env.a.timeout.to_string()])
         .stdin(Stdio::piped())
@@ -715,7 +844,7 @@ fn round_bare(env: &Env<'_>, topic: &str, n: u64, round: u32, read_payloads: boo
                         drop(g.child.stdin.take());
                         g.stop(Duration::from_secs(10));
                         return Ok(Round {
-                            who: if read_payloads { "c: bare consumer reading payloads" } else { "a: bare consumer" },
+                            who: floor.who(),
                             round,
                             events,
                             window_s: (done_ns.saturating_sub(first)) as f64 / 1e9,
@@ -1287,13 +1416,16 @@ fn all(a: AllArgs) -> anyhow::Result<()> {
     let mut rounds = Vec::new();
     for r in 1..=a.rounds {
         progress("throughput", format!("round {r}/{}: a, bare consumer", a.rounds));
-        let x = round_bare(&env, &topic, a.events, r, false)?;
+        let x = round_bare(&env, &topic, a.events, r, Floor::Plain)?;
         progress("throughput", format!("a{r}: {:.0} events/s, {:.2} CPU s", x.rate(), x.cpu_s));
         rounds.push(x);
-        if !a.skip_reading_floor {
-            progress("throughput", format!("round {r}/{}: c, bare consumer reading payloads", a.rounds));
-            let x = round_bare(&env, &topic, a.events, r, true)?;
-            progress("throughput", format!("c{r}: {:.0} events/s, {:.2} CPU s", x.rate(), x.cpu_s));
+        for (skip, floor) in [(a.skip_reading_floor, Floor::Reading), (a.skip_batch_floor, Floor::Batched)] {
+            if skip {
+                continue;
+            }
+            progress("throughput", format!("round {r}/{}: {}", a.rounds, floor.who()));
+            let x = round_bare(&env, &topic, a.events, r, floor)?;
+            progress("throughput", format!("{}{r}: {:.0} events/s, {:.2} CPU s", &floor.who()[..1], x.rate(), x.cpu_s));
             rounds.push(x);
         }
         progress("throughput", format!("round {r}/{}: b, apportion run", a.rounds));
@@ -1376,6 +1508,18 @@ fn summary(a: &AllArgs, sc: &Scenario, fill_s: f64, rounds: &[Round], lat: Optio
             med("c", &Round::rate),
             cb / cc,
             wb / wc
+        );
+    }
+    if rounds.iter().any(|r| r.who.starts_with('d')) {
+        let (cd, wd) = (med("d", &Round::cpu_per_million), med("d", &Round::cpu_window_per_million));
+        let _ = writeln!(
+            s,
+            "\nd: a bare consumer taking messages with librdkafka's batch call, as the sidecar does (the client's \
+             floor for the sidecar's way of reading): {:.0} events/s, {cd:.2} CPU s / M events ({wd:.2} in window); \
+             b/d = {:.2} ({:.2} in window).",
+            med("d", &Round::rate),
+            cb / cd,
+            wb / wd
         );
     }
     if let Some(l) = lat {
