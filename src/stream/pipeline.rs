@@ -24,10 +24,23 @@ use crate::telemetry::table::{ArmRow, ExperimentRow};
 use crate::telemetry::Metrics;
 use prometheus::IntCounter;
 
-/// Counts deliveries that failed, so that a snapshot is only trusted once it has landed.
+/// Counts deliveries that failed, so that a snapshot is only trusted once it has landed; wakes
+/// the thread that serves delivery reports when something is sent.
 #[derive(Default)]
 pub struct DeliveryWatch {
     pub failed: AtomicU64,
+    /// The thread serving delivery reports ([`serve_deliveries`]), which sleeps while nothing
+    /// is in flight.
+    pub server: std::sync::OnceLock<std::thread::Thread>,
+}
+
+impl DeliveryWatch {
+    /// Wakes the delivery report thread if it sleeps (an atomic swap when it does not).
+    pub fn wake(&self) {
+        if let Some(t) = self.server.get() {
+            t.unpark();
+        }
+    }
 }
 
 impl ClientContext for DeliveryWatch {}
@@ -43,8 +56,8 @@ impl ProducerContext for DeliveryWatch {
 }
 
 /// The producer of weights, snapshots and dead letters. Its delivery reports are served every
-/// 10 ms by a small thread ([`serve_deliveries`], started in `stream::run`), while a full queue
-/// drains, and by `flush`. (The rdkafka crate's `ThreadedProducer` polls with a 100 ms timeout
+/// 10 ms by a small thread ([`serve_deliveries`], started in `stream::run`) while any message is
+/// in flight, while a full queue drains, and by `flush`. (The rdkafka crate's `ThreadedProducer` polls with a 100 ms timeout
 /// that spins through the last millisecond of each wait: about 1 % of a core.)
 pub type Sink = BaseProducer<DeliveryWatch>;
 
@@ -865,7 +878,10 @@ pub fn serve_deliveries(sink: &Sink) {
 fn send_with_retry(sink: &Sink, mut record: BaseRecord<'_, [u8], [u8]>) {
     for _ in 0..600 {
         match sink.send(record) {
-            Ok(()) => return,
+            Ok(()) => {
+                sink.context().wake();
+                return;
+            }
             Err((e, r)) => {
                 if !matches!(e.rdkafka_error_code(), Some(rdkafka::types::RDKafkaErrorCode::QueueFull)) {
                     tracing::error!(topic = r.topic, "cannot send: {e}");
