@@ -116,6 +116,26 @@ fn stops(x: u64) -> u64 {
     zero(x ^ (ONES * u64::from(b'"'))) | zero(x ^ (ONES * u64::from(b'\\'))) | (x.wrapping_sub(ONES * 0x20) & !x & HIGHS)
 }
 
+/// Whether all eight bytes of `x` are ASCII digits: the high nibble is 3, and adding 6 to the
+/// low nibble does not carry into it.
+#[inline(always)]
+fn eight_digits(x: u64) -> bool {
+    const NIBBLES: u64 = u64::from_ne_bytes([0xF0; 8]);
+    const THREES: u64 = u64::from_ne_bytes([0x30; 8]);
+    (x & NIBBLES) == THREES && (x.wrapping_add(ONES * 6) & NIBBLES) == THREES
+}
+
+/// The value of eight ASCII digits read little-endian (the first digit in the lowest byte):
+/// pairs, then fours, then the eight, each step one multiply and a mask (no carries: 99, 9 999
+/// and 99 999 999 fit their lanes).
+#[inline(always)]
+fn eight_digits_value(x: u64) -> u64 {
+    let x = x - ONES * u64::from(b'0');
+    let x = (x.wrapping_mul(10) + (x >> 8)) & 0x00FF_00FF_00FF_00FF;
+    let x = (x.wrapping_mul(100) + (x >> 16)) & 0x0000_FFFF_0000_FFFF;
+    (x.wrapping_mul(10_000) + (x >> 32)) & 0xFFFF_FFFF
+}
+
 impl<'a> Scanner<'a> {
     #[inline(always)]
     fn peek(&self) -> Option<u8> {
@@ -183,38 +203,53 @@ impl<'a> Scanner<'a> {
         Some(field)
     }
 
-    /// Where the bytes of a string without escapes or control characters lie (keys are
-    /// compared as bytes). Eight bytes at a time while eight remain, then one at a time.
+    /// Where the bytes of a string without escapes or control characters lie, and whether they
+    /// are all ASCII. Eight bytes at a time while eight remain, then one at a time.
     #[inline(always)]
-    fn plain_span(&mut self) -> Option<(usize, usize)> {
+    fn plain_span(&mut self) -> Option<(usize, usize, bool)> {
         self.expect(b'"')?;
         let start = self.i;
         let mut j = start;
+        // The high bits of every byte before the end: zero for ASCII.
+        let mut high = 0u64;
         let end = loop {
             if let Some(chunk) = self.b.get(j..j + 8) {
                 let word = u64::from_le_bytes(chunk.try_into().ok()?);
                 let m = stops(word);
                 if m != 0 {
-                    break j + (m.trailing_zeros() / 8) as usize;
+                    let k = m.trailing_zeros() / 8;
+                    // The bytes below the first stop (none when it is the lowest byte).
+                    high |= word & ((1u64 << (8 * k)) - 1);
+                    break j + k as usize;
                 }
+                high |= word;
                 j += 8;
             } else {
                 let rest = &self.b[j..];
-                break j + rest.iter().position(|&c| c == b'"' || c == b'\\' || c < 0x20)?;
+                let k = rest.iter().position(|&c| c == b'"' || c == b'\\' || c < 0x20)?;
+                high |= rest[..k].iter().fold(0u64, |h, &c| h | u64::from(c));
+                break j + k;
             }
         };
         if self.b[end] != b'"' {
             return None;
         }
         self.i = end + 1;
-        Some((start, end))
+        Some((start, end, high & HIGHS == 0))
     }
 
-    /// A string without escapes or control characters, borrowed; valid UTF-8 only.
+    /// A string without escapes or control characters, borrowed; valid UTF-8 only. ASCII,
+    /// the common case, needs no further check.
     #[inline(always)]
     fn plain_string(&mut self) -> Option<&'a str> {
-        let (start, end) = self.plain_span()?;
-        std::str::from_utf8(&self.b[start..end]).ok()
+        let (start, end, ascii) = self.plain_span()?;
+        let bytes = &self.b[start..end];
+        if ascii {
+            // SAFETY: ASCII bytes are valid UTF-8.
+            Some(unsafe { std::str::from_utf8_unchecked(bytes) })
+        } else {
+            std::str::from_utf8(bytes).ok()
+        }
     }
 
     /// `-?(0|[1-9][0-9]*)` that fits an i64, not followed by a fraction or an exponent:
@@ -226,13 +261,33 @@ impl<'a> Scanner<'a> {
             self.i += 1;
         }
         let start = self.i;
-        let digits = self.b[start..].iter().take_while(|c| c.is_ascii_digit()).count();
+        // Eight digits at a time for the first sixteen (a millisecond timestamp has thirteen),
+        // then one at a time; below 10^19 the sum cannot overflow a u64.
+        let mut j = start;
+        let mut sum = 0u64;
+        while j - start < 16 {
+            let Some(chunk) = self.b.get(j..j + 8) else { break };
+            let word = u64::from_le_bytes(chunk.try_into().ok()?);
+            if !eight_digits(word) {
+                break;
+            }
+            sum = sum * 100_000_000 + eight_digits_value(word);
+            j += 8;
+        }
+        while let Some(d @ b'0'..=b'9') = self.b.get(j).copied() {
+            if j - start < 19 {
+                sum = sum * 10 + u64::from(d - b'0');
+            }
+            j += 1;
+        }
+        let digits = j - start;
         if digits == 0 || (digits > 1 && self.b[start] == b'0') {
             return None;
         }
         let run = &self.b[start..start + digits];
         let v = if digits <= 18 {
-            let v = run.iter().fold(0i64, |v, &d| v * 10 + i64::from(d - b'0'));
+            // Below 10^18, so it fits an i64.
+            let v = sum as i64;
             if negative { -v } else { v }
         } else {
             let mut v: i64 = 0;
@@ -345,6 +400,39 @@ mod tests {
                     }
                 }
             }
+        }
+    }
+
+    /// Integers are read eight digits at a time: every length up to past an i64, both signs,
+    /// every digit in every place, and what may follow.
+    #[test]
+    fn integers_read_as_serde_json_reads_them_at_any_length() {
+        for len in 1..=21 {
+            for digit in b'0'..=b'9' {
+                for sign in ["", "-"] {
+                    for after in ["}", ",\"count\":2}", " }", ".5}", "e3}", "x}"] {
+                        let mut n: Vec<u8> = (0..len).map(|i| b'1' + (i % 9) as u8).collect();
+                        n[(usize::from(digit) * 7 + len) % len] = digit;
+                        let n = String::from_utf8(n).unwrap();
+                        let json = format!(r#"{{"event_id":"e","kind":"impression","experiment":"x","arm":"y","ts_ms":{sign}{n}{after}"#);
+                        assert!(fast_path_agrees(json.as_bytes()).is_ok(), "{json}: {:?}", fast_path_agrees(json.as_bytes()));
+                    }
+                }
+            }
+        }
+        let taken = br#"{"event_id":"e","kind":"impression","experiment":"x","arm":"y","ts_ms":1764547200123}"#;
+        assert_eq!(fast_path_agrees(taken), Ok(true));
+    }
+
+    #[test]
+    fn eight_digits_at_once() {
+        for n in [0u64, 1, 12_345_678, 99_999_999, 10_000_000, 90_817_263] {
+            let w = u64::from_le_bytes(format!("{n:08}").as_bytes().try_into().unwrap());
+            assert!(eight_digits(w));
+            assert_eq!(eight_digits_value(w), n);
+        }
+        for odd in [*b"1234567/", *b"1234567:", *b"/1234567", *b":1234567", *b"1234 678", *b"\xb12345678"] {
+            assert!(!eight_digits(u64::from_le_bytes(odd)), "{odd:?}");
         }
     }
 

@@ -125,6 +125,11 @@ impl Batch {
         self.messages.len() >= self.capacity
     }
 
+    pub fn get(&self, i: usize) -> Option<Fetched<'_>> {
+        // SAFETY: every pointer is a live message owned by this batch.
+        self.messages.get(i).map(|&m| Fetched(unsafe { &*m }))
+    }
+
     pub fn iter(&self) -> impl Iterator<Item = Fetched<'_>> {
         // SAFETY: every pointer is a live message owned by this batch.
         self.messages.iter().map(|&m| Fetched(unsafe { &*m }))
@@ -171,6 +176,20 @@ impl<'a> Fetched<'a> {
 
     pub fn payload(&self) -> Option<&'a [u8]> {
         bytes(self.0.payload, self.0.len)
+    }
+
+    /// Asks the processor to start loading the first 256 bytes of the payload, without waiting.
+    /// (The client's network thread wrote them on another core.)
+    #[inline(always)]
+    pub fn prefetch(&self) {
+        #[cfg(target_arch = "x86_64")]
+        if let Some(p) = self.payload() {
+            use std::arch::x86_64::{_mm_prefetch, _MM_HINT_T0};
+            for off in (0..p.len().min(256)).step_by(64) {
+                // SAFETY: a prefetch is a hint; the address lies inside the payload.
+                unsafe { _mm_prefetch::<_MM_HINT_T0>(p.as_ptr().add(off).cast()) }
+            }
+        }
     }
 }
 

@@ -123,6 +123,9 @@ fn log_error(logged: &mut u32, e: &dyn std::fmt::Display) {
 /// publish round).
 const BATCH: usize = 256;
 
+/// While a message is applied, the payload of the one this many places ahead is prefetched.
+const PREFETCH_AHEAD: usize = 2;
+
 /// Runs until shutdown: read, apply, publish on the interval, snapshot on the interval. On
 /// shutdown: publish, snapshot, commit, and leave the group.
 ///
@@ -160,22 +163,26 @@ pub fn run(consumer: BaseConsumer<SourceContext>, fetch: Arc<FetchQueue>, pipeli
         }
         let offsets = {
             let mut p = lock(&pipeline);
-            let records = strays.iter().map(|m| (m.partition(), m.offset(), m.key(), m.payload()));
-            let fetched = batch.iter().filter_map(|m| match m.error() {
-                None => Some((m.partition(), m.offset(), m.key(), m.payload())),
-                Some(e) => {
-                    log_error(&mut errors_logged, &e);
-                    None
-                }
-            });
-            for (part, offset, key, payload) in records.chain(fetched) {
+            let mut apply = |part: i32, offset: i64, key: Option<&[u8]>, payload: Option<&[u8]>| {
                 // Once a partition is to be read again from further back, the rest of what
                 // was fetched for it is stale.
                 if seeks.iter().any(|&(s, _)| s == part) {
-                    continue;
+                    return;
                 }
                 if let Some(from) = p.on_message(part, offset, key, payload, wall_ms) {
                     seeks.push((part, from));
+                }
+            };
+            for m in &strays {
+                apply(m.partition(), m.offset(), m.key(), m.payload());
+            }
+            for (i, m) in batch.iter().enumerate() {
+                if let Some(ahead) = batch.get(i + PREFETCH_AHEAD) {
+                    ahead.prefetch();
+                }
+                match m.error() {
+                    None => apply(m.partition(), m.offset(), m.key(), m.payload()),
+                    Some(e) => log_error(&mut errors_logged, &e),
                 }
             }
             p.export_counts();
