@@ -69,6 +69,11 @@ fn decode(c: &mut Criterion) {
     g.bench_function("mixed", |b| {
         b.iter(|| mixed.iter().filter(|m| apportion::event::decode(black_box(m.as_bytes()), 16_384, 1_764_547_300_000, 300_000).is_ok()).count())
     });
+    // The same stream through one stream decoder, as the pipeline reads it (shapes remembered).
+    let mut decoder = apportion::event::Decoder::default();
+    g.bench_function("mixed-stream", |b| {
+        b.iter(|| mixed.iter().filter(|m| decoder.decode(black_box(m.as_bytes()), 16_384, 1_764_547_300_000, 300_000).is_ok()).count())
+    });
     g.finish();
 }
 

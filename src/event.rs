@@ -9,7 +9,7 @@ use serde::Deserialize;
 
 mod scan;
 #[doc(hidden)]
-pub use scan::fast_path_agrees;
+pub use scan::{fast_path_agrees, shape_path_agrees};
 
 /// Why an event was rejected. The codes are part of the contract (dead-letter header, metric
 /// label); keep them stable.
@@ -185,7 +185,59 @@ pub fn decode(bytes: &[u8], max_bytes: usize, now_ms: i64, max_skew_ms: i64) -> 
         return Err(Reason::TooLarge);
     }
     let mut raw = Raw::default();
-    if scan::scan(bytes, &mut raw).is_none() {
+    let taken = scan::scan(bytes, &mut raw).is_some();
+    validate(bytes, raw, taken, now_ms, max_skew_ms)
+}
+
+/// Decodes events one after another, as [`decode`] does, remembering the shapes of the last two
+/// kinds of event it read: an event written like one of them is read by comparing the text
+/// between its values, without looking for its keys (`scan::Shape`).
+#[derive(Default)]
+pub struct Decoder {
+    shapes: [scan::Shape; 2],
+    /// The shape that took the last event.
+    last: usize,
+}
+
+impl Decoder {
+    pub fn decode<'a>(&mut self, bytes: &'a [u8], max_bytes: usize, now_ms: i64, max_skew_ms: i64) -> Result<Event<'a>, Reason> {
+        if bytes.len() > max_bytes {
+            return Err(Reason::TooLarge);
+        }
+        let mut raw = Raw::default();
+        let taken = self.read(bytes, &mut raw);
+        validate(bytes, raw, taken, now_ms, max_skew_ms)
+    }
+
+    /// Fills `raw` by a shape or by the general scan; `false` to leave the event to serde_json.
+    fn read<'a>(&mut self, bytes: &'a [u8], raw: &mut Raw<'a>) -> bool {
+        let (last, other) = (self.last, 1 - self.last);
+        if self.shapes[last].read(bytes, raw).is_some() {
+            return true;
+        }
+        *raw = Raw::default();
+        if self.shapes[other].read(bytes, raw).is_some() {
+            self.last = other;
+            return true;
+        }
+        *raw = Raw::default();
+        let mut spans = scan::Spans::default();
+        if scan::scan_noting(bytes, raw, &mut spans).is_none() {
+            return false;
+        }
+        // The new shape replaces the one that took nothing just now.
+        if let Some(shape) = scan::Shape::learn(bytes, &spans) {
+            self.shapes[other] = shape;
+            self.last = other;
+        }
+        true
+    }
+}
+
+/// The checks of an event read into `raw` (`taken`), or read by serde_json otherwise.
+#[inline(always)]
+fn validate<'a>(bytes: &'a [u8], mut raw: Raw<'a>, taken: bool, now_ms: i64, max_skew_ms: i64) -> Result<Event<'a>, Reason> {
+    if !taken {
         raw = serde_json::from_slice(bytes).map_err(|e| {
             use serde_json::error::Category;
             match e.classify() {

@@ -117,6 +117,27 @@ fn quoted(s: &str) -> String {
     serde_json::to_string(s).expect("a string serialises")
 }
 
+/// What must hold of an event read after `teacher` by one stream decoder (which remembers the
+/// shape of the events it read): the shape learned from `teacher` reads `bytes` exactly as
+/// serde_json does, or leaves them; and the stream decoder decides as `event::decode` does.
+/// The same holds of `bytes` cut short by one byte and of `bytes` followed by more text.
+fn stream_decoding_holds_its_contract(teacher: &[u8], bytes: &[u8]) -> Result<bool, TestCaseError> {
+    for tail in [&b"x"[..], b" ", b"}", b",\"count\":1}"] {
+        one_after_another(teacher, &[bytes, tail].concat())?;
+    }
+    one_after_another(teacher, &bytes[..bytes.len().saturating_sub(1)])?;
+    one_after_another(teacher, bytes)
+}
+
+fn one_after_another(teacher: &[u8], bytes: &[u8]) -> Result<bool, TestCaseError> {
+    let taken = event::shape_path_agrees(teacher, bytes)
+        .map_err(|e| TestCaseError::fail(format!("{e}: after {:?}: {:?}", String::from_utf8_lossy(teacher), String::from_utf8_lossy(bytes))))?;
+    let mut d = event::Decoder::default();
+    prop_assert_eq!(d.decode(teacher, MAX_BYTES, NOW, SKEW_MS), event::decode(teacher, MAX_BYTES, NOW, SKEW_MS));
+    prop_assert_eq!(d.decode(bytes, MAX_BYTES, NOW, SKEW_MS), event::decode(bytes, MAX_BYTES, NOW, SKEW_MS));
+    Ok(taken)
+}
+
 /// JSON text chosen to break readers: extreme and malformed numbers, strings that look like
 /// numbers, long and non-ASCII strings, names and ids around their length limits, deep nesting.
 fn hostile_json_text() -> impl Strategy<Value = String> {
@@ -235,29 +256,44 @@ fn the_fast_path_reads_plain_events_as_serde_json_does() {
         any::<f64>().prop_map(|v| if v.is_finite() { format!("{v}") } else { "0.5".to_string() }),
         (-1e6f64..1e6).prop_map(|v| format!("{v:.6}")),
     ];
-    let field = (0usize..9, string, integer);
+    // Each field with two values: a second event written the same way, with other values,
+    // is read by the shape the first one taught a stream decoder.
+    let field = (0usize..9, string.clone(), integer.clone(), string, integer);
     let strategy = (prop::collection::vec((field, ws.clone(), ws.clone()), 0..9), ws);
-    let taken = std::cell::Cell::new(0u32);
+    let (taken, by_shape) = (std::cell::Cell::new(0u32), std::cell::Cell::new(0u32));
     runner(2_000)
         .run(&strategy, |(fields, tail)| {
             let names = ["event_id", "kind", "experiment", "arm", "ts_ms", "count", "reward", "propensity", "weights_version"];
-            let body: Vec<String> = fields
-                .iter()
-                .map(|((f, text, number), before, after)| {
-                    let v = if *f < 4 { text } else { number };
-                    format!("{before}\"{}\"{after}:{before}{v}{after}", names[*f])
-                })
-                .collect();
-            let bytes = format!("{tail}{{{}}}{tail}", body.join(",")).into_bytes();
+            let render = |second: bool| {
+                let body: Vec<String> = fields
+                    .iter()
+                    .map(|((f, text, number, text2, number2), before, after)| {
+                        let v = match (*f < 4, second) {
+                            (true, false) => text,
+                            (true, true) => text2,
+                            (false, false) => number,
+                            (false, true) => number2,
+                        };
+                        format!("{before}\"{}\"{after}:{before}{v}{after}", names[*f])
+                    })
+                    .collect();
+                format!("{tail}{{{}}}{tail}", body.join(",")).into_bytes()
+            };
+            let (bytes, second) = (render(false), render(true));
             match event::fast_path_agrees(&bytes) {
                 Ok(true) => taken.set(taken.get() + 1),
                 Ok(false) => {}
                 Err(e) => return Err(TestCaseError::fail(format!("{e}: {}", String::from_utf8_lossy(&bytes)))),
             }
-            decode_holds_its_contract(&bytes)
+            decode_holds_its_contract(&bytes)?;
+            if stream_decoding_holds_its_contract(&bytes, &second)? {
+                by_shape.set(by_shape.get() + 1);
+            }
+            Ok(())
         })
         .unwrap();
     assert!(taken.get() > 200, "only {} of 2 000 generated events took the fast path", taken.get());
+    assert!(by_shape.get() > 100, "only {} of 2 000 second events were read by the shape of the first", by_shape.get());
 }
 
 #[test]
@@ -278,7 +314,11 @@ fn event_decoding_takes_mutated_events_without_panicking() {
             let code = event::decode(&bytes, MAX_BYTES, NOW, SKEW_MS).map_or_else(|r| r.code(), |_| "ok");
             *outcomes.borrow_mut().entry(code).or_default() += 1;
             decode_holds_its_contract(&bytes)?;
-            decode_holds_its_contract(&corrupt(bytes, &flips))
+            let teacher = render(&valid_fields(reward));
+            stream_decoding_holds_its_contract(&teacher, &bytes)?;
+            let corrupted = corrupt(bytes.clone(), &flips);
+            stream_decoding_holds_its_contract(&bytes, &corrupted)?;
+            decode_holds_its_contract(&corrupted)
         })
         .unwrap();
     // The mutations reach past the JSON reader into every check of the decoder: valid events

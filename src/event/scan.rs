@@ -9,9 +9,12 @@
 //! ([`fast_path_agrees`]).
 //!
 //! Speed: keys and the two kinds are compared with constants after a dispatch on their first
-//! letter; only the string values kept are checked as UTF-8 (outside them a flat object of
-//! this shape is ASCII, or it is refused); the end of each string is found eight bytes at a
-//! time; integers that cannot overflow are read without a check per digit.
+//! letter; string values are checked for ASCII while their end is found, eight bytes at a
+//! time, and only the others go through a UTF-8 check (outside them a flat object of this
+//! shape is ASCII, or it is refused); integers are read eight digits at a time. A stream
+//! decoder ([`crate::event::Decoder`]) also remembers the [`Shape`] of recent events, the text
+//! between their values, and reads an event written the same way by comparing that text and
+//! reading its values alone ([`shape_path_agrees`] is checked in `tests/hostile.rs` too).
 
 use std::borrow::Cow;
 
@@ -21,8 +24,25 @@ use super::Raw;
 /// `None` to fall back to `serde_json`, with `raw` left partly filled. (Filled in place: the
 /// struct is about 200 bytes, and moving it out cost a copy per event.)
 pub(super) fn scan<'a>(bytes: &'a [u8], raw: &mut Raw<'a>) -> Option<()> {
+    scan_noting(bytes, raw, &mut Spans::default())
+}
+
+/// Where the values of an event scanned lie: (field, start, end) in the order met. The kind,
+/// when it is one of the two known, counts as part of the text between values.
+#[derive(Default)]
+pub(super) struct Spans {
+    n: usize,
+    at: [(u8, usize, usize); 9],
+    /// The kind, when the text named it.
+    kind: Option<&'static str>,
+}
+
+/// [`scan`], noting in `spans` where each value lies (for [`Shape::learn`]).
+pub(super) fn scan_noting<'a>(bytes: &'a [u8], raw: &mut Raw<'a>, spans: &mut Spans) -> Option<()> {
     let mut s = Scanner { b: bytes, i: 0 };
     let mut seen = 0u16;
+    spans.n = 0;
+    spans.kind = None;
     s.ws();
     s.expect(b'{')?;
     s.ws();
@@ -39,37 +59,20 @@ pub(super) fn scan<'a>(bytes: &'a [u8], raw: &mut Raw<'a>) -> Option<()> {
             }
             seen |= 1 << field;
             match field {
-                1 if s.literal(b"\"impression\"") => raw.kind = Some(Cow::Borrowed("impression")),
-                1 if s.literal(b"\"reward\"") => raw.kind = Some(Cow::Borrowed("reward")),
-                0..=3 => {
-                    let v = if s.null() { None } else { Some(Cow::Borrowed(s.plain_string()?)) };
-                    match field {
-                        0 => raw.event_id = v,
-                        1 => raw.kind = v,
-                        2 => raw.experiment = v,
-                        _ => raw.arm = v,
-                    }
+                1 if s.literal(b"\"impression\"") => {
+                    raw.kind = Some(Cow::Borrowed("impression"));
+                    spans.kind = Some("impression");
                 }
-                4 => raw.ts_ms = if s.null() { None } else { Some(s.integer()?) },
-                5 | 8 => {
-                    let v = if s.null() {
-                        None
-                    } else {
-                        Some(u64::try_from(s.integer()?).ok()?)
-                    };
-                    if field == 5 {
-                        raw.count = v;
-                    } else {
-                        raw.weights_version = v;
-                    }
+                1 if s.literal(b"\"reward\"") => {
+                    raw.kind = Some(Cow::Borrowed("reward"));
+                    spans.kind = Some("reward");
                 }
                 _ => {
-                    let v = if s.null() { None } else { Some(s.plain_float()?) };
-                    if field == 6 {
-                        raw.reward = v;
-                    } else {
-                        raw.propensity = v;
-                    }
+                    let start = s.i;
+                    s.value(field, raw)?;
+                    // `seen` allows each of the nine fields once, so there is room.
+                    spans.at[spans.n] = (field as u8, start, s.i);
+                    spans.n += 1;
                 }
             }
             s.ws();
@@ -82,6 +85,106 @@ pub(super) fn scan<'a>(bytes: &'a [u8], raw: &mut Raw<'a>) -> Option<()> {
     }
     s.ws();
     (s.i == bytes.len()).then_some(())
+}
+
+/// The text between the values of an event the general scan took, and the field each value
+/// fills. Producers write the events of one kind the same way every time (same keys, order
+/// and spacing), so most events match the text of an earlier one and are read by comparing
+/// that text and reading the values alone, with no search for keys.
+///
+/// An event read this way is, byte for byte, an event the general scan took with other values
+/// in the same places, each read by the same code; so it reads as `serde_json` reads it, which
+/// `tests/hostile.rs` checks ([`shape_path_agrees`]).
+#[derive(Clone)]
+pub(super) struct Shape {
+    /// The texts between values, one after the other: text `k` (before value `k`; the last one
+    /// follows the last value) ends at `ends[k]`.
+    text: [u8; SHAPE_TEXT],
+    ends: [u16; 10],
+    fields: [u8; 9],
+    /// The kind, when the text names it.
+    kind: Option<&'static str>,
+    /// Values; `None` until a shape is learned.
+    n: Option<u8>,
+}
+
+/// Bytes of text a shape holds; an event with more between its values is not learned.
+const SHAPE_TEXT: usize = 256;
+
+impl Default for Shape {
+    fn default() -> Self {
+        Shape { text: [0; SHAPE_TEXT], ends: [0; 10], fields: [0; 9], kind: None, n: None }
+    }
+}
+
+impl Shape {
+    /// The shape of `bytes`, which the general scan took noting `spans`; `None` if its text is
+    /// too long to keep.
+    pub(super) fn learn(bytes: &[u8], spans: &Spans) -> Option<Shape> {
+        let mut shape = Shape::default();
+        let mut len = 0usize;
+        let mut gap = |shape: &mut Shape, k: usize, from: usize, to: usize| -> Option<()> {
+            let part = bytes.get(from..to)?;
+            shape.text.get_mut(len..len + part.len())?.copy_from_slice(part);
+            len += part.len();
+            shape.ends[k] = len as u16;
+            Some(())
+        };
+        let mut from = 0usize;
+        for (k, &(field, start, end)) in spans.at[..spans.n].iter().enumerate() {
+            gap(&mut shape, k, from, start)?;
+            shape.fields[k] = field;
+            from = end;
+        }
+        gap(&mut shape, spans.n, from, bytes.len())?;
+        shape.kind = spans.kind;
+        shape.n = Some(spans.n as u8);
+        Some(shape)
+    }
+
+    /// Fills `raw` (which starts empty) if `bytes` has this shape; `None` otherwise, with `raw`
+    /// left partly filled.
+    #[inline(always)]
+    pub(super) fn read<'a>(&self, bytes: &'a [u8], raw: &mut Raw<'a>) -> Option<()> {
+        let n = usize::from(self.n?);
+        let mut s = Scanner { b: bytes, i: 0 };
+        let mut from = 0usize;
+        for k in 0..=n {
+            let to = usize::from(self.ends[k]);
+            if !s.text(&self.text[from..to]) {
+                return None;
+            }
+            from = to;
+            if k < n {
+                s.value(u16::from(self.fields[k]), raw)?;
+            }
+        }
+        if let Some(kind) = self.kind {
+            raw.kind = Some(Cow::Borrowed(kind));
+        }
+        (s.i == bytes.len()).then_some(())
+    }
+}
+
+/// For tests: with the shape of `teacher` learned, `Ok(true)` when that shape took `bytes`
+/// and read exactly what `serde_json` reads, `Ok(false)` when it did not take them (or the
+/// teacher had no shape), `Err` when the two disagree.
+#[doc(hidden)]
+pub fn shape_path_agrees(teacher: &[u8], bytes: &[u8]) -> Result<bool, String> {
+    let mut spans = Spans::default();
+    if scan_noting(teacher, &mut Raw::default(), &mut spans).is_none() {
+        return Ok(false);
+    }
+    let Some(shape) = Shape::learn(teacher, &spans) else { return Ok(false) };
+    let mut fast = Raw::default();
+    if shape.read(bytes, &mut fast).is_none() {
+        return Ok(false);
+    }
+    match serde_json::from_slice::<Raw<'_>>(bytes) {
+        Ok(reference) if reference == fast => Ok(true),
+        Ok(reference) => Err(format!("shape path read {fast:?}, serde_json {reference:?}")),
+        Err(e) => Err(format!("shape path read {fast:?}, serde_json refused: {e}")),
+    }
 }
 
 /// For tests: `Ok(true)` when the fast path took `bytes` and read exactly what `serde_json`
@@ -114,6 +217,14 @@ const HIGHS: u64 = u64::from_ne_bytes([0x80; 8]);
 fn stops(x: u64) -> u64 {
     let zero = |v: u64| v.wrapping_sub(ONES) & !v & HIGHS;
     zero(x ^ (ONES * u64::from(b'"'))) | zero(x ^ (ONES * u64::from(b'\\'))) | (x.wrapping_sub(ONES * 0x20) & !x & HIGHS)
+}
+
+/// The eight bytes of `s` from `at`, as one word.
+#[inline(always)]
+fn word(s: &[u8], at: usize) -> u64 {
+    let mut w = [0u8; 8];
+    w.copy_from_slice(&s[at..at + 8]);
+    u64::from_le_bytes(w)
 }
 
 /// Whether all eight bytes of `x` are ASCII digits: the high nibble is 3, and adding 6 to the
@@ -170,6 +281,68 @@ impl<'a> Scanner<'a> {
         } else {
             false
         }
+    }
+
+    /// One value of `field`: a string (or null) for the four names, an integer for the time,
+    /// count and weights version, a decimal for reward and propensity.
+    #[inline(always)]
+    fn value(&mut self, field: u16, raw: &mut Raw<'a>) -> Option<()> {
+        match field {
+            0..=3 => {
+                let v = if self.null() { None } else { Some(Cow::Borrowed(self.plain_string()?)) };
+                match field {
+                    0 => raw.event_id = v,
+                    1 => raw.kind = v,
+                    2 => raw.experiment = v,
+                    _ => raw.arm = v,
+                }
+            }
+            4 => raw.ts_ms = if self.null() { None } else { Some(self.integer()?) },
+            5 | 8 => {
+                let v = if self.null() {
+                    None
+                } else {
+                    Some(u64::try_from(self.integer()?).ok()?)
+                };
+                if field == 5 {
+                    raw.count = v;
+                } else {
+                    raw.weights_version = v;
+                }
+            }
+            _ => {
+                let v = if self.null() { None } else { Some(self.plain_float()?) };
+                if field == 6 {
+                    raw.reward = v;
+                } else {
+                    raw.propensity = v;
+                }
+            }
+        }
+        Some(())
+    }
+
+    /// Takes `text` if the input continues with it; compared eight bytes at a time (the last
+    /// eight overlapping the word before), or one at a time when shorter.
+    #[inline(always)]
+    fn text(&mut self, text: &[u8]) -> bool {
+        let n = text.len();
+        let Some(have) = self.b.get(self.i..self.i + n) else { return false };
+        let same = if n >= 8 {
+            let mut same = word(have, n - 8) == word(text, n - 8);
+            let mut at = 0;
+            while at + 8 < n {
+                same &= word(have, at) == word(text, at);
+                at += 8;
+            }
+            same
+        } else {
+            have.iter().zip(text).all(|(a, b)| a == b)
+        };
+        if same {
+            self.i += n;
+        }
+        same
     }
 
     /// Takes `lit` if the input continues with it.
@@ -422,6 +595,34 @@ mod tests {
         }
         let taken = br#"{"event_id":"e","kind":"impression","experiment":"x","arm":"y","ts_ms":1764547200123}"#;
         assert_eq!(fast_path_agrees(taken), Ok(true));
+    }
+
+    /// A shape takes an event written the same way with other values, and nothing else.
+    #[test]
+    fn a_shape_takes_events_written_alike_and_leaves_the_rest() {
+        let teacher = br#"{"event_id":"i-1","kind":"impression","experiment":"x","arm":"y","ts_ms":1764547200123,"count":1,"propensity":0.25}"#;
+        for (other, taken) in [
+            (&br#"{"event_id":"i-22222222222","kind":"impression","experiment":"thumb.v2","arm":"warm","ts_ms":5,"count":30,"propensity":1}"#[..], true),
+            (br#"{"event_id":null,"kind":"impression","experiment":"x","arm":"y","ts_ms":null,"count":null,"propensity":null}"#, true),
+            ("{\"event_id\":\"caf\u{e9}\",\"kind\":\"impression\",\"experiment\":\"x\",\"arm\":\"y\",\"ts_ms\":-1,\"count\":1,\"propensity\":0.5}".as_bytes(), true),
+            (br#"{"event_id":"i-1","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"count":1,"propensity":0.25}"#, false),
+            (br#"{"event_id":"i-1","kind":"impression","experiment":"x","arm":"y","ts_ms":1,"count":1,"propensity":0.25} "#, false),
+            (br#"{"event_id":"i-1","kind":"impression","experiment":"x","arm":"y","ts_ms":1,"count":1,"propensity":0.25,"count":2}"#, false),
+            (br#"{"event_id":"i\"1","kind":"impression","experiment":"x","arm":"y","ts_ms":1,"count":1,"propensity":0.25}"#, false),
+            (br#"{"event_id":"i-1","kind":"impression","experiment":"x","arm":"y","ts_ms":1.5,"count":1,"propensity":0.25}"#, false),
+            (br#"{"event_id":"i-1","kind":"impression","experiment":"x","arm":"y","ts_ms":1e3,"count":1,"propensity":0.25}"#, false),
+            (br#"{"event_id":"i-1","kind":"impression","experiment":"x","arm":"y","ts_ms":"1","count":1,"propensity":0.25}"#, false),
+            (br#"{"event_id":"i-1","kind":"impression","experiment":"x","arm":"y","ts_ms":1,"count":1,"propensity":0.25"#, false),
+            (br#"{"event_id":"i-1","kind":"impression","experiment":"x","arm":"y","ts_ms":1,"count":1}"#, false),
+            (br#"{"event_id":"i-1","kind": "impression","experiment":"x","arm":"y","ts_ms":1,"count":1,"propensity":0.25}"#, false),
+        ] {
+            assert_eq!(shape_path_agrees(teacher, other), Ok(taken), "{}", String::from_utf8_lossy(other));
+        }
+        // The kind as a value (not one of the two) is a value of the shape like any other.
+        let odd_kind = br#"{"event_id":"a","kind":"click","experiment":"x","arm":"y","ts_ms":1}"#;
+        assert_eq!(shape_path_agrees(odd_kind, br#"{"event_id":"b","kind":"reward","experiment":"x","arm":"y","ts_ms":2}"#), Ok(true));
+        // No shape is learned from what the general scan leaves to serde_json.
+        assert_eq!(shape_path_agrees(br#"{"event_id":"a\u0041"}"#, br#"{"event_id":"abbbbbb"}"#), Ok(false));
     }
 
     #[test]

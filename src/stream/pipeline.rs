@@ -206,6 +206,8 @@ struct Ctx {
     /// per batch of messages ([`Pipeline::export_counts`]), not per event, since every
     /// increment of a shared counter is an atomic write the consumer thread waits for.
     unexported: [u64; 9],
+    /// Remembers the shapes of recent events, which most events repeat.
+    decoder: event::Decoder,
 }
 
 /// One input message.
@@ -291,7 +293,7 @@ impl Ctx {
     /// Decodes, checks and applies one event, or dead-letters it with its reason.
     fn apply(&mut self, holdings: &mut Holdings, part: &mut PartitionState, msg: &Msg<'_>, now_ms: i64) {
         let PartitionState { experiments, dedup, tally, .. } = part;
-        let ev = match event::decode(msg.bytes, self.s.max_event_bytes, now_ms, self.s.max_skew_ms) {
+        let ev = match self.decoder.decode(msg.bytes, self.s.max_event_bytes, now_ms, self.s.max_skew_ms) {
             Ok(ev) => ev,
             Err(reason) => return self.reject(tally, msg, reason, UNKNOWN),
         };
@@ -366,7 +368,7 @@ impl Pipeline {
             })
             .collect();
         Pipeline {
-            ctx: Ctx { s, served, sink, events, unexported: [0; 9] },
+            ctx: Ctx { s, served, sink, events, unexported: [0; 9], decoder: event::Decoder::default() },
             state_reader,
             state_partitions: state_partitions.max(1),
             partitions: BTreeMap::new(),
