@@ -12,12 +12,29 @@ fn apportion() -> Command {
     c
 }
 
-fn write_config(name: &str, text: &str) -> std::path::PathBuf {
+/// A configuration file in a folder of its own, removed with the folder when dropped.
+struct Scratch(std::path::PathBuf);
+
+impl Scratch {
+    fn path(&self) -> &std::path::Path {
+        &self.0
+    }
+}
+
+impl Drop for Scratch {
+    fn drop(&mut self) {
+        if let Some(dir) = self.0.parent() {
+            let _ = std::fs::remove_dir_all(dir);
+        }
+    }
+}
+
+fn write_config(name: &str, text: &str) -> Scratch {
     let dir = std::env::temp_dir().join(format!("apportion-cli-{:016x}", rand::random::<u64>()));
     std::fs::create_dir_all(&dir).unwrap();
     let p = dir.join(name);
     std::fs::write(&p, text).unwrap();
-    p
+    Scratch(p)
 }
 
 #[test]
@@ -41,7 +58,7 @@ fn each_configuration_error_exits_2_naming_the_key() {
     ];
     for (text, key) in cases {
         let p = write_config("bad.toml", text);
-        let out = apportion().args(["check", "--config"]).arg(&p).output().unwrap();
+        let out = apportion().args(["check", "--config"]).arg(p.path()).output().unwrap();
         let err = String::from_utf8_lossy(&out.stderr);
         assert_eq!(out.status.code(), Some(2), "{text}: {err}");
         assert!(err.contains(key), "{text}: message does not name {key}: {err}");
@@ -74,7 +91,7 @@ fn check_prints_the_resolved_experiments_and_never_a_secret() {
     );
     let out = apportion()
         .args(["check", "--config"])
-        .arg(&p)
+        .arg(p.path())
         .env("APPORTION_KAFKA__CLIENT__SASL_USERNAME", "svc")
         .output()
         .unwrap();
