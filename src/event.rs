@@ -189,9 +189,9 @@ pub fn decode(bytes: &[u8], max_bytes: usize, now_ms: i64, max_skew_ms: i64) -> 
     validate(bytes, raw, taken, now_ms, max_skew_ms)
 }
 
-/// Decodes events one after another, as [`decode`] does, remembering the shapes of the last two
-/// kinds of event it read: an event written like one of them is read by comparing the text
-/// between its values, without looking for its keys (`scan::Shape`).
+/// Decodes events one after another, as [`decode`] does, remembering the last two layouts of
+/// event it read (impressions and rewards, usually): an event written like one of them is read
+/// by comparing the text between its values, without looking for its keys (`scan::Shape`).
 #[derive(Default)]
 pub struct Decoder {
     shapes: [scan::Shape; 2],

@@ -21,8 +21,8 @@ use rdkafka::admin::{AdminClient, AdminOptions, NewTopic, TopicReplication};
 use rdkafka::client::DefaultClientContext;
 use rdkafka::config::ClientConfig;
 use rdkafka::consumer::{BaseConsumer, Consumer};
-use rdkafka::producer::Producer;
 use rdkafka::error::KafkaError;
+use rdkafka::producer::Producer;
 use rdkafka::types::RDKafkaErrorCode;
 
 use crate::config::Config;
@@ -95,9 +95,12 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
     let consumer: BaseConsumer<SourceContext> = c.create_with_context(ctx).context("cannot create the consumer")?;
     let fetch = Arc::new(fetch::FetchQueue::new(&consumer));
     *consumer.context().fetch.lock().unwrap_or_else(|p| p.into_inner()) = Some(fetch.clone());
-    consumer
-        .subscribe(&[&settings.input_topic])
-        .with_context(|| format!("cannot subscribe to {}", settings.input_topic))?;
+    if let Err(e) = consumer.subscribe(&[&settings.input_topic]) {
+        // The fetch queue goes before the consumer does, as at the end of `source::run`.
+        consumer.context().fetch.lock().unwrap_or_else(|p| p.into_inner()).take();
+        drop(fetch);
+        return Err(e).with_context(|| format!("cannot subscribe to {}", settings.input_topic));
+    }
     tracing::info!(topic = %settings.input_topic, group = %cfg.kafka.group_id, "consuming");
     let stop = shutdown.clone();
     tokio::task::spawn_blocking(move || source::run(consumer, fetch, pipeline, stop))

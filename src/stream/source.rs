@@ -60,7 +60,7 @@ impl ConsumerContext for SourceContext {
                 let mut take = TopicPartitionList::new();
                 for (p, off) in offsets {
                     if !fetch.as_ref().is_some_and(|q| q.route(consumer, &self.input_topic, p)) {
-                        tracing::error!(partition = p, "cannot route the partition to the fetch queue; its messages come through poll");
+                        tracing::error!(partition = p, "cannot route the partition to the fetch queue");
                     }
                     if let Err(e) = take.add_partition_offset(&self.input_topic, p, off) {
                         tracing::error!(partition = p, "cannot set the start offset: {e}");
