@@ -70,7 +70,7 @@ fn logs(x: f64) -> (f64, f64) {
     (x.ln(), (-x).ln_1p())
 }
 
-/// Probability that each arm is the best, for Beta(alpha[k], beta[k]) posteriors with both
+/// Probability that each arm is the best, for Beta(`alpha[k]`, `beta[k]`) posteriors with both
 /// parameters ≥ 1 (the priors the policies allow). `out` receives one probability per arm.
 pub fn prob_best(alpha: &[f64], beta: &[f64], out: &mut [f64]) {
     let k = alpha.len();

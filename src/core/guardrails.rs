@@ -6,7 +6,7 @@
 //! Where the bounds cannot all hold at once at run time (an arm came or went, so the previous
 //! weights no longer fit), the step limit gives way first, then the cap; the floor never does,
 //! because configurations where it cannot hold are rejected up front and extra arms are
-//! refused (see [`Guardrails::max_arms`]).
+//! refused (see [`Guardrails::max_free_arms`]).
 
 use std::collections::BTreeMap;
 
