@@ -57,8 +57,9 @@ impl ProducerContext for DeliveryWatch {
 
 /// The producer of weights, snapshots and dead letters. Its delivery reports are served every
 /// 10 ms by a small thread ([`serve_deliveries`], started in `stream::run`) while any message is
-/// in flight, while a full queue drains, and by `flush`. (The rdkafka crate's `ThreadedProducer` polls with a 100 ms timeout
-/// that spins through the last millisecond of each wait: about 1 % of a core.)
+/// in flight, while a full queue drains, and by `flush`. (The rdkafka crate's `ThreadedProducer`
+/// polls with a 100 ms timeout that spins through the last millisecond of each wait: about 1 % of
+/// a core.)
 pub type Sink = BaseProducer<DeliveryWatch>;
 
 /// Called with each state-topic message read: offset, key, value.
