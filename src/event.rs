@@ -31,10 +31,11 @@ pub enum Reason {
     UnknownExperiment,
     TooManyExperiments,
     TooManyArms,
+    UnknownArm,
 }
 
 impl Reason {
-    pub const ALL: [Reason; 16] = [
+    pub const ALL: [Reason; 17] = [
         Reason::TooLarge,
         Reason::NotJson,
         Reason::NotObject,
@@ -51,6 +52,7 @@ impl Reason {
         Reason::UnknownExperiment,
         Reason::TooManyExperiments,
         Reason::TooManyArms,
+        Reason::UnknownArm,
     ];
 
     pub fn code(self) -> &'static str {
@@ -71,6 +73,7 @@ impl Reason {
             Reason::UnknownExperiment => "unknown-experiment",
             Reason::TooManyExperiments => "too-many-experiments",
             Reason::TooManyArms => "too-many-arms",
+            Reason::UnknownArm => "unknown-arm",
         }
     }
 }

@@ -438,6 +438,9 @@ fn sample_snapshot() -> Snapshot {
         next_offset: 1_234,
         generation: 3,
         written_at_ms: t0 + 60_000,
+        // Written before snapshots carried these: the defaults they read back with.
+        group_generation: -1,
+        handed_over: false,
         experiments: [("clicks".to_string(), clicks.state()), ("watch".to_string(), watch.state())].into_iter().collect(),
         duplicates,
         counters: Counters {
@@ -447,6 +450,7 @@ fn sample_snapshot() -> Snapshot {
                 .collect(),
             dead_letters: [("not-json".to_string(), 2u64)].into_iter().collect(),
             split: BTreeMap::new(),
+            unmatched_rewards: BTreeMap::new(),
         },
     }
 }

@@ -273,6 +273,8 @@ fn resuming_inside_a_record_batch_applies_the_rest_of_that_batch() {
         next_offset: 150,
         generation: 1,
         written_at_ms: apportion::stream::pipeline::now_ms(),
+        group_generation: -1,
+        handed_over: false,
         experiments: BTreeMap::new(),
         duplicates: Vec::new(),
         counters: Counters::default(),

@@ -43,6 +43,10 @@ pub enum Refusal {
     RewardOutOfRange,
     #[error("the experiment has as many arms as it may have")]
     TooManyArms,
+    /// A reward for an arm that has had no impression: arms join only on evidence, and a
+    /// reward is not evidence that the arm is being shown.
+    #[error("reward for an arm with no impressions")]
+    UnknownArm,
 }
 
 /// Weights for one publish, with the figures reported beside them.
@@ -182,7 +186,23 @@ impl Experiment {
         j
     }
 
-    /// Applies one observation of arm `arm` made at event time `ts_ms`. O(1).
+    /// Applies one observation of the arm called `name`, adding the arm only for an impression
+    /// and only once nothing else can refuse it: a refused observation leaves the experiment
+    /// exactly as it was. Returns the arm's index. O(1).
+    pub fn apply(&mut self, name: &str, ts_ms: i64, obs: Observation) -> Result<usize, Refusal> {
+        let arm = match (self.index.get(name), obs) {
+            (Some(&j), _) => j,
+            (None, Observation::Reward { value }) if !self.spec.reward.accepts(value) => return Err(Refusal::RewardOutOfRange),
+            (None, Observation::Reward { .. }) => return Err(Refusal::UnknownArm),
+            (None, Observation::Impression { .. }) => self.arm_or_add(name)?,
+        };
+        self.observe(arm, ts_ms, obs)?;
+        Ok(arm)
+    }
+
+    /// Applies one observation of arm `arm` made at event time `ts_ms`, or refuses it and
+    /// changes nothing: a reward outside the reward range, or for an arm with no impressions
+    /// yet. O(1).
     pub fn observe(&mut self, arm: usize, ts_ms: i64, obs: Observation) -> Result<(), Refusal> {
         let half_life = self.spec.half_life_ms;
         match obs {
@@ -190,6 +210,9 @@ impl Experiment {
             Observation::Reward { value } => {
                 if !self.spec.reward.accepts(value) {
                     return Err(Refusal::RewardOutOfRange);
+                }
+                if self.stats[arm].pulls_total == 0 {
+                    return Err(Refusal::UnknownArm);
                 }
                 self.stats[arm].add_reward(value, ts_ms, half_life)
             }
@@ -251,5 +274,52 @@ impl Experiment {
         let weights = self.weights(now_ms, batch);
         let version = self.commit(&weights);
         Allocation { version, weights, report: self.report(now_ms) }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::core::{PolicyName, PolicySpec};
+
+    fn thompson(arms: &[&str]) -> Experiment {
+        let arms: Vec<String> = arms.iter().map(|a| a.to_string()).collect();
+        Experiment::new(ExperimentSpec::new(PolicySpec::new(PolicyName::Thompson), RewardModel::Bernoulli), &arms).expect("valid experiment")
+    }
+
+    #[test]
+    fn a_refused_reward_for_a_new_arm_leaves_no_arm_behind() {
+        let mut e = thompson(&["a", "b"]);
+        let before = e.state();
+        assert_eq!(e.apply("ghost", 1, Observation::Reward { value: 5.0 }), Err(Refusal::RewardOutOfRange));
+        assert_eq!(e.apply("ghost", 1, Observation::Reward { value: 1.0 }), Err(Refusal::UnknownArm));
+        assert_eq!(e.state(), before);
+        assert_eq!(e.arm("ghost"), None);
+        // 300 valid events later the weights cover the declared arms alone.
+        for i in 0..150 {
+            let arm = if i % 2 == 0 { "a" } else { "b" };
+            e.apply(arm, i, Observation::Impression { count: 1 }).expect("impression");
+            e.apply(arm, i, Observation::Reward { value: (i % 3 == 0) as u8 as f64 }).expect("reward");
+        }
+        assert_eq!(e.arm_names(), ["a", "b"]);
+        assert_eq!(e.weights(300, 1).len(), 2);
+    }
+
+    #[test]
+    fn a_reward_for_an_arm_without_impressions_is_refused_and_changes_nothing() {
+        let mut e = thompson(&["a"]);
+        let before = e.state();
+        assert_eq!(e.observe(0, 5, Observation::Reward { value: 1.0 }), Err(Refusal::UnknownArm));
+        assert_eq!(e.state(), before);
+        e.apply("a", 6, Observation::Impression { count: 1 }).expect("impression");
+        assert_eq!(e.apply("a", 7, Observation::Reward { value: 1.0 }), Ok(0));
+        assert_eq!(e.arm_stats()[0].reward_total, 1.0);
+    }
+
+    #[test]
+    fn an_impression_of_a_new_arm_adds_it() {
+        let mut e = thompson(&[]);
+        assert_eq!(e.apply("fresh", 1, Observation::Impression { count: 3 }), Ok(0));
+        assert_eq!(e.arm_stats()[0].pulls_total, 3);
     }
 }

@@ -6,7 +6,9 @@
 //!                     └ offsets + statistics → state topic (snapshots)  └ metrics → /metrics
 //! ```
 
+pub mod counts;
 pub mod dedup;
+pub mod fence;
 pub mod fetch;
 pub mod pipeline;
 pub mod publish;
@@ -80,6 +82,7 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
         served: served.clone(),
         input_topic: settings.input_topic.clone(),
         fetch: Mutex::new(None),
+        fence: fence::Fence::start(&cfg.kafka.client).context("cannot start the pause watch")?,
     };
     let mut c = client_config(&cfg);
     c.set("group.id", &cfg.kafka.group_id)

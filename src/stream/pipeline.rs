@@ -13,6 +13,7 @@ use rdkafka::producer::{BaseProducer, BaseRecord, DeliveryResult, Producer, Prod
 use rdkafka::{ClientContext, Offset, TopicPartitionList};
 use rustc_hash::FxHashMap;
 
+use super::counts::{self, Cells, Outcome};
 use super::dedup::DedupWindow;
 use super::publish::WeightsMessage;
 use super::snapshot::{self, Counters, Pointer, Snapshot, SnapshotOut, Stored};
@@ -61,6 +62,9 @@ impl ProducerContext for DeliveryWatch {
 /// polls with a 100 ms timeout that spins through the last millisecond of each wait: about 1 % of
 /// a core.)
 pub type Sink = BaseProducer<DeliveryWatch>;
+
+/// How many of a partition's newest snapshots a restore weighs against each other.
+const CANDIDATES: usize = 8;
 
 /// Called with each state-topic message read: offset, key, value.
 type StateVisitor<'a> = dyn FnMut(i64, Option<&[u8]>, &[u8]) + 'a;
@@ -122,21 +126,6 @@ impl Entry {
     }
 }
 
-/// Event kinds and outcomes as counted: `apportion_events_total{kind, outcome}`.
-const KINDS: [&str; 3] = ["impression", "reward", "unknown"];
-const OUTCOMES: [&str; 3] = ["applied", "duplicate", "rejected"];
-const UNKNOWN: usize = 2;
-const APPLIED: usize = 0;
-const DUPLICATE: usize = 1;
-const REJECTED: usize = 2;
-
-fn kind_index(kind: Kind) -> usize {
-    match kind {
-        Kind::Impression => 0,
-        Kind::Reward => 1,
-    }
-}
-
 struct PartitionState {
     next_offset: i64,
     experiments: FxHashMap<String, Entry>,
@@ -144,6 +133,8 @@ struct PartitionState {
     tally: Tally,
     /// Generation of the last snapshot written (or loaded) of this partition.
     generation: u64,
+    /// The consumer group generation this instance was given the partition in.
+    group_generation: i32,
     /// The part slot (0 or 1) of the newest complete snapshot written in parts; the next one
     /// goes to the other slot.
     complete_slot: u64,
@@ -155,22 +146,17 @@ struct PartitionState {
 /// What a partition counted, apart from its experiments so that both can be borrowed at once.
 #[derive(Default)]
 struct Tally {
-    /// Dead letters and split events; the event counts live in `events` and are written into
-    /// `counters.events` only when a snapshot is taken.
+    /// Dead letters, split events and unmatched rewards; the event counts live in `events`
+    /// and are written into `counters.events` only when a snapshot is taken.
     counters: Counters,
-    /// Events by `KINDS` × `OUTCOMES` (kind * 3 + outcome), restored values included.
-    events: [u64; 9],
+    /// Events by kind and outcome, restored values included.
+    events: Cells,
 }
 
 impl PartitionState {
     fn counters_for_snapshot(&self) -> Counters {
         let mut c = self.tally.counters.clone();
-        c.events = BTreeMap::new();
-        for (i, &n) in self.tally.events.iter().enumerate() {
-            if n > 0 {
-                c.events.insert(format!("{}/{}", KINDS[i / 3], OUTCOMES[i % 3]), n);
-            }
-        }
+        c.events = self.tally.events.to_map();
         c
     }
 }
@@ -201,12 +187,12 @@ struct Ctx {
     s: Arc<Settings>,
     served: Arc<Served>,
     sink: Arc<Sink>,
-    /// `apportion_events_total` handles, in the order of `PartitionState::events`.
+    /// `apportion_events_total` handles, one per cell of [`Cells`].
     events: Vec<IntCounter>,
     /// Events counted since the handles above were last brought up to date: they are, once
     /// per batch of messages ([`Pipeline::export_counts`]), not per event, since every
     /// increment of a shared counter is an atomic write the consumer thread waits for.
-    unexported: [u64; 9],
+    unexported: Cells,
     /// Remembers the shapes of recent events, which most events repeat.
     decoder: event::Decoder,
 }
@@ -234,6 +220,11 @@ pub struct Pipeline {
     state_partitions: i32,
     partitions: BTreeMap<i32, PartitionState>,
     holdings: Holdings,
+    /// Per input partition this instance let go of, its counts at that moment: what this
+    /// process's counters hold of it, should it come back (see `counts.rs`).
+    released: FxHashMap<i32, Counters>,
+    /// Set once shutdown began: snapshots written from then on are the writer's last.
+    closing: bool,
     last_publish: Instant,
     last_snapshot: Instant,
 }
@@ -247,14 +238,13 @@ impl Ctx {
         &self.served.metrics
     }
 
-    fn count(&mut self, tally: &mut Tally, kind: usize, outcome: usize) {
-        let i = kind * 3 + outcome;
-        self.unexported[i] += 1;
-        tally.events[i] += 1;
+    fn count(&mut self, tally: &mut Tally, kind: counts::Kind, outcome: Outcome) {
+        self.unexported.add(kind, outcome);
+        tally.events.add(kind, outcome);
     }
 
-    fn reject(&mut self, tally: &mut Tally, msg: &Msg<'_>, reason: Reason, kind: usize) {
-        self.count(tally, kind, REJECTED);
+    fn reject(&mut self, tally: &mut Tally, msg: &Msg<'_>, reason: Reason, kind: counts::Kind) {
+        self.count(tally, kind, Outcome::Rejected);
         self.metrics().dead_letters.with_label_values(&[reason.code()]).inc();
         *tally.counters.dead_letters.entry(reason.code().to_string()).or_default() += 1;
         let source = format!("{}/{}/{}", self.s.input_topic, msg.partition, msg.offset);
@@ -266,6 +256,17 @@ impl Ctx {
             record = record.key(k);
         }
         send_with_retry(&self.sink, record);
+    }
+
+    /// A reward for an arm with no impressions: dead-lettered `unknown-arm`, and counted per
+    /// experiment when the experiment is one this instance knows (declared, or held here), so
+    /// that made-up experiment ids cannot create series.
+    fn unmatched(&mut self, tally: &mut Tally, msg: &Msg<'_>, experiment: &str, known: bool) {
+        if known {
+            self.metrics().unmatched_rewards.with_label_values(&[experiment]).inc();
+            *tally.counters.unmatched_rewards.entry(experiment.to_string()).or_default() += 1;
+        }
+        self.reject(tally, msg, Reason::UnknownArm, counts::Kind::Reward);
     }
 
     fn note_split(&self, tally: &mut Tally, experiment: &str) {
@@ -296,12 +297,12 @@ impl Ctx {
         let PartitionState { experiments, dedup, tally, .. } = part;
         let ev = match self.decoder.decode(msg.bytes, self.s.max_event_bytes, now_ms, self.s.max_skew_ms) {
             Ok(ev) => ev,
-            Err(reason) => return self.reject(tally, msg, reason, UNKNOWN),
+            Err(reason) => return self.reject(tally, msg, reason, counts::Kind::Unknown),
         };
-        let kind = kind_index(ev.kind);
+        let kind = counts::Kind::from(ev.kind);
         let id_hash = DedupWindow::hash(&ev.event_id);
         if dedup.contains_hash(id_hash) {
-            return self.count(tally, kind, DUPLICATE);
+            return self.count(tally, kind, Outcome::Duplicate);
         }
         // The common case looks the experiment up once.
         if let Some(entry) = experiments.get_mut(ev.experiment.as_ref()) {
@@ -310,41 +311,59 @@ impl Ctx {
             }
             return self.observe(entry, dedup, tally, msg, &ev, kind, id_hash);
         }
-        let spec = match self.s.declared.get(ev.experiment.as_ref()) {
+        // The experiment is not held on this partition. Only a valid impression creates it;
+        // everything is checked on a new experiment of its own before it joins the state, so a
+        // refused event leaves nothing behind.
+        let declared = self.s.declared.get(ev.experiment.as_ref());
+        let spec = match declared {
             Some(r) => Some((r.spec.clone(), r.arms.clone())),
             None => self.s.default_spec.clone().map(|s| (s, Vec::new())),
         };
         let Some((spec, arms)) = spec else {
             return self.reject(tally, msg, Reason::UnknownExperiment, kind);
         };
+        if ev.kind == Kind::Reward {
+            if !spec.reward.accepts(ev.reward) {
+                return self.reject(tally, msg, Reason::RewardOutOfRange, kind);
+            }
+            let known = declared.is_some() || holdings.owners.contains_key(ev.experiment.as_ref());
+            return self.unmatched(tally, msg, &ev.experiment, known);
+        }
         if holdings.held >= self.s.max_experiments {
             return self.reject(tally, msg, Reason::TooManyExperiments, kind);
         }
-        let exp = match Experiment::new(spec, &arms) {
+        let mut exp = match Experiment::new(spec, &arms) {
             Ok(e) => e,
             Err(e) => {
                 tracing::error!(experiment = %ev.experiment, "cannot create experiment: {e}");
                 return self.reject(tally, msg, Reason::UnknownExperiment, kind);
             }
         };
-        let entry = experiments.entry(ev.experiment.to_string()).or_insert(Entry::new(exp));
+        if exp.apply(&ev.arm, ev.ts_ms, Observation::Impression { count: ev.count }).is_err() {
+            return self.reject(tally, msg, Reason::TooManyArms, kind);
+        }
+        let mut entry = Entry::new(exp);
+        entry.impressions_since = ev.count;
+        entry.first_applied = Some(Instant::now());
+        experiments.insert(ev.experiment.to_string(), entry);
         holdings.held += 1;
         self.note_owner(holdings, tally, msg.partition, &ev.experiment);
-        self.observe(entry, dedup, tally, msg, &ev, kind, id_hash);
+        dedup.insert_new(id_hash);
+        self.count(tally, kind, Outcome::Applied);
     }
 
     /// Applies a decoded, new event to its experiment's entry.
     #[allow(clippy::too_many_arguments)]
-    fn observe(&mut self, entry: &mut Entry, dedup: &mut DedupWindow, tally: &mut Tally, msg: &Msg<'_>, ev: &event::Event<'_>, kind: usize, id_hash: u64) {
-        let Ok(arm) = entry.exp.arm_or_add(&ev.arm) else {
-            return self.reject(tally, msg, Reason::TooManyArms, kind);
-        };
+    fn observe(&mut self, entry: &mut Entry, dedup: &mut DedupWindow, tally: &mut Tally, msg: &Msg<'_>, ev: &event::Event<'_>, kind: counts::Kind, id_hash: u64) {
         let obs = match ev.kind {
             Kind::Impression => Observation::Impression { count: ev.count },
             Kind::Reward => Observation::Reward { value: ev.reward },
         };
-        if let Err(Refusal::RewardOutOfRange | Refusal::TooManyArms) = entry.exp.observe(arm, ev.ts_ms, obs) {
-            return self.reject(tally, msg, Reason::RewardOutOfRange, kind);
+        match entry.exp.apply(&ev.arm, ev.ts_ms, obs) {
+            Ok(_) => {}
+            Err(Refusal::RewardOutOfRange) => return self.reject(tally, msg, Reason::RewardOutOfRange, kind),
+            Err(Refusal::TooManyArms) => return self.reject(tally, msg, Reason::TooManyArms, kind),
+            Err(Refusal::UnknownArm) => return self.unmatched(tally, msg, &ev.experiment, true),
         }
         if let Observation::Impression { count } = obs {
             entry.impressions_since = entry.impressions_since.saturating_add(count);
@@ -354,7 +373,7 @@ impl Ctx {
             entry.first_applied = Some(Instant::now());
         }
         dedup.insert_new(id_hash);
-        self.count(tally, kind, APPLIED);
+        self.count(tally, kind, Outcome::Applied);
     }
 }
 
@@ -362,25 +381,33 @@ impl Pipeline {
     pub fn new(s: Arc<Settings>, served: Arc<Served>, sink: Arc<Sink>, state_reader: BaseConsumer, state_partitions: i32) -> Self {
         // An event of unknown kind is never applied nor a duplicate: those two cells count
         // nothing, so they get no series.
-        let events = (0..9)
-            .map(|i| match (i / 3, i % 3) {
-                (UNKNOWN, APPLIED | DUPLICATE) => IntCounter::new("apportion_unused", "never exported").expect("a valid name"),
-                (k, o) => served.metrics.events.with_label_values(&[KINDS[k], OUTCOMES[o]]),
+        let events = (0..counts::CELLS)
+            .map(|i| {
+                let (kind, outcome) = Cells::labels(i);
+                if Cells::counts_anything(i) {
+                    served.metrics.events.with_label_values(&[kind, outcome])
+                } else {
+                    IntCounter::new("apportion_unused", "never exported").expect("a valid name")
+                }
             })
             .collect();
         Pipeline {
-            ctx: Ctx { s, served, sink, events, unexported: [0; 9], decoder: event::Decoder::default() },
+            ctx: Ctx { s, served, sink, events, unexported: Cells::default(), decoder: event::Decoder::default() },
             state_reader,
             state_partitions: state_partitions.max(1),
             partitions: BTreeMap::new(),
             holdings: Holdings::default(),
+            released: FxHashMap::default(),
+            closing: false,
             last_publish: Instant::now(),
             last_snapshot: Instant::now(),
         }
     }
 
-    pub fn settings(&self) -> &Settings {
-        &self.ctx.s
+    /// Marks the start of shutdown: the snapshots written from now on hand the partitions to
+    /// whoever comes next, counts included.
+    pub fn begin_closing(&mut self) {
+        self.closing = true;
     }
 
     /// Applies one message of input partition `partition` at `offset`. Returns an offset to
@@ -490,7 +517,10 @@ impl Pipeline {
     ///
     /// A snapshot larger than `snapshot_part_bytes` is written in parts; its pointer follows
     /// only once every part has landed, so a reader never finds a pointer to missing parts.
-    pub fn snapshot(&mut self, partitions: &[i32]) -> Vec<(i32, i64)> {
+    ///
+    /// `handing_over` marks snapshots written as the partitions go to another member while
+    /// this one stays (see `counts.rs`).
+    pub fn snapshot(&mut self, partitions: &[i32], handing_over: bool) -> Vec<(i32, i64)> {
         let written_at_ms = now_ms();
         let failed_before = self.ctx.sink.context().failed.load(Ordering::SeqCst);
         let mut done = Vec::new();
@@ -507,6 +537,8 @@ impl Pipeline {
                 next_offset: part.next_offset,
                 generation: part.generation,
                 written_at_ms,
+                group_generation: part.group_generation,
+                handed_over: handing_over && !self.closing,
                 experiments: States(&part.experiments),
                 duplicates: &duplicates,
                 counters: &counters,
@@ -536,6 +568,7 @@ impl Pipeline {
                     partition: p,
                     generation: part.generation,
                     slot,
+                    group_generation: part.group_generation,
                     parts: chunks.len() as u32,
                     bytes: bytes.len() as u64,
                     checksum: snapshot::fnv1a(&bytes),
@@ -599,7 +632,7 @@ impl Pipeline {
     /// Brings `apportion_events_total` up to date with the events counted since the last call.
     /// Called after every batch of messages.
     pub fn export_counts(&mut self) {
-        for (counter, n) in self.ctx.events.iter().zip(&mut self.ctx.unexported) {
+        for (counter, n) in self.ctx.events.iter().zip(self.ctx.unexported.0.iter_mut()) {
             if *n > 0 {
                 counter.inc_by(std::mem::take(n));
             }
@@ -611,15 +644,16 @@ impl Pipeline {
             return Vec::new();
         }
         let all: Vec<i32> = self.partitions.keys().copied().collect();
-        self.snapshot(&all)
+        self.snapshot(&all, false)
     }
 
     pub fn owned_partitions(&self) -> Vec<i32> {
         self.partitions.keys().copied().collect()
     }
 
-    /// Takes partitions over: loads each one's latest snapshot and returns where to resume.
-    pub fn assign(&mut self, partitions: &[i32]) -> Vec<(i32, Offset)> {
+    /// Takes partitions over, given to this instance in consumer group generation
+    /// `group_generation`: loads each one's preferred snapshot and returns where to resume.
+    pub fn assign(&mut self, partitions: &[i32], group_generation: i32) -> Vec<(i32, Offset)> {
         let mut out = Vec::new();
         for &p in partitions {
             let started = Instant::now();
@@ -633,6 +667,7 @@ impl Pipeline {
             };
             let mut part = self.restore(p, snap);
             part.complete_slot = slot;
+            part.group_generation = group_generation;
             if part.next_offset > 0 {
                 part.resume_check = Some(ResumeCheck { target: part.next_offset, asked: part.next_offset });
             }
@@ -654,7 +689,7 @@ impl Pipeline {
         out
     }
 
-    fn restore(&self, p: i32, snap: Option<Snapshot>) -> PartitionState {
+    fn restore(&mut self, p: i32, snap: Option<Snapshot>) -> PartitionState {
         let Some(snap) = snap else {
             return PartitionState {
                 next_offset: 0,
@@ -662,6 +697,7 @@ impl Pipeline {
                 dedup: DedupWindow::new(self.ctx.s.duplicate_window),
                 tally: Tally::default(),
                 generation: 0,
+                group_generation: -1,
                 complete_slot: 1,
                 resume_check: None,
             };
@@ -691,24 +727,12 @@ impl Pipeline {
                 Err(e) => tracing::error!(experiment = %id, partition = p, "cannot restore experiment under the current configuration: {e}"),
             }
         }
-        let mut events = [0u64; 9];
-        for (k, &v) in &snap.counters.events {
-            let cell = k.split_once('/').and_then(|(kind, outcome)| {
-                Some(KINDS.iter().position(|x| *x == kind)? * 3 + OUTCOMES.iter().position(|x| *x == outcome)?)
-            });
-            match cell {
-                Some(i) => {
-                    events[i] = v;
-                    self.ctx.events[i].inc_by(v);
-                }
-                None => tracing::warn!(partition = p, counter = %k, "unknown event counter in the snapshot; dropped"),
-            }
-        }
-        for (reason, v) in &snap.counters.dead_letters {
-            self.ctx.metrics().dead_letters.with_label_values(&[reason]).inc_by(*v);
-        }
-        for (exp, v) in &snap.counters.split {
-            self.ctx.metrics().split.with_label_values(&[exp]).inc_by(*v);
+        let events = Cells::from_map(&snap.counters.events, |k| {
+            tracing::warn!(partition = p, counter = %k, "unknown event counter in the snapshot; dropped")
+        });
+        let base = self.released.remove(&p).unwrap_or_default();
+        if !snap.handed_over {
+            self.count_restored(&counts::beyond(&snap.counters, &base));
         }
         PartitionState {
             next_offset: snap.next_offset,
@@ -716,18 +740,47 @@ impl Pipeline {
             dedup: DedupWindow::restore(self.ctx.s.duplicate_window, &snap.duplicates),
             tally: Tally { counters: snap.counters, events },
             generation: snap.generation,
+            group_generation: snap.group_generation,
             complete_slot: 1,
             resume_check: None,
         }
     }
 
+    /// Adds counts restored from a snapshot to this process's counters.
+    fn count_restored(&self, c: &Counters) {
+        let cells = Cells::from_map(&c.events, |_| {});
+        for (handle, &n) in self.ctx.events.iter().zip(cells.0.iter()) {
+            handle.inc_by(n);
+        }
+        let m = self.ctx.metrics();
+        for (reason, v) in &c.dead_letters {
+            m.dead_letters.with_label_values(&[reason]).inc_by(*v);
+        }
+        for (exp, v) in &c.split {
+            m.split.with_label_values(&[exp]).inc_by(*v);
+        }
+        for (exp, v) in &c.unmatched_rewards {
+            m.unmatched_rewards.with_label_values(&[exp]).inc_by(*v);
+        }
+    }
+
     /// Hands partitions back: publishes what is due, snapshots them, drops their state and
     /// what the HTTP side shows of them. Returns the offsets to commit.
-    pub fn revoke(&mut self, partitions: &[i32]) -> Vec<(i32, i64)> {
-        self.publish_due(true);
-        let offsets = self.snapshot(partitions);
+    ///
+    /// With `lost`, the group already gave the partitions to another member (this one was
+    /// fenced out: a pause past its session, a network split): nothing is written for them,
+    /// since their new owner may have moved on, and their state is dropped as it is.
+    pub fn revoke(&mut self, partitions: &[i32], lost: bool) -> Vec<(i32, i64)> {
+        let offsets = if lost {
+            tracing::warn!(partitions = ?partitions, "the assignment was lost; the partitions' state is dropped without writing");
+            Vec::new()
+        } else {
+            self.publish_due(true);
+            self.snapshot(partitions, true)
+        };
         for p in partitions {
             if let Some(part) = self.partitions.remove(p) {
+                self.released.insert(*p, part.counters_for_snapshot());
                 self.holdings.held = self.holdings.held.saturating_sub(part.experiments.len());
                 let mut table = self.ctx.served.table.write().unwrap_or_else(|e| e.into_inner());
                 for id in part.experiments.keys() {
@@ -779,24 +832,35 @@ impl Pipeline {
             })?;
             found.sort_by_key(|(offset, _)| std::cmp::Reverse(*offset));
             tried.extend(found.iter().map(|(offset, _)| *offset));
-            let mut chosen = None;
-            for (offset, bytes) in &found {
+            // The newest few are weighed against each other by group generation: a member that
+            // lost the partition unawares writes at most a round or two after its new owner.
+            let mut candidates: Vec<(i64, Stored)> = Vec::new();
+            for (offset, bytes) in found.iter().take(CANDIDATES) {
                 match Stored::decode(bytes) {
                     Ok(Stored::Whole(s)) if s.partition == p && s.topic == self.ctx.s.input_topic => {
-                        chosen = Some((*s, 1));
-                        break;
+                        candidates.push((*offset, Stored::Whole(s)));
                     }
                     Ok(Stored::Parts(ptr)) if ptr.partition == p && ptr.topic == self.ctx.s.input_topic => {
-                        match self.gather_parts(sp, low, *offset, &ptr) {
-                            Ok(s) => {
-                                chosen = Some((s, ptr.slot));
-                                break;
-                            }
-                            Err(e) => tracing::error!(partition = p, generation = ptr.generation, "skipping a snapshot whose parts cannot be read: {e}"),
-                        }
+                        candidates.push((*offset, Stored::Parts(ptr)));
                     }
                     Ok(_) => {}
                     Err(e) => tracing::error!(partition = p, "skipping an unreadable snapshot: {e}"),
+                }
+            }
+            let mut chosen = None;
+            while let Some(i) = snapshot::preferred(&candidates) {
+                match candidates.swap_remove(i) {
+                    (_, Stored::Whole(s)) => {
+                        chosen = Some((*s, 1));
+                        break;
+                    }
+                    (offset, Stored::Parts(ptr)) => match self.gather_parts(sp, low, offset, &ptr) {
+                        Ok(s) => {
+                            chosen = Some((s, ptr.slot));
+                            break;
+                        }
+                        Err(e) => tracing::error!(partition = p, generation = ptr.generation, "skipping a snapshot whose parts cannot be read: {e}"),
+                    },
                 }
             }
             if chosen.is_some() {

@@ -29,6 +29,9 @@ pub struct Counters {
     pub dead_letters: BTreeMap<String, u64>,
     /// experiment → events seen on this partition while another partition holds it.
     pub split: BTreeMap<String, u64>,
+    /// experiment → rewards refused for an arm with no impressions.
+    #[serde(default)]
+    pub unmatched_rewards: BTreeMap<String, u64>,
 }
 
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
@@ -43,6 +46,15 @@ pub struct Snapshot {
     pub generation: u64,
     /// Wall-clock time of writing, ms; bounds how many weights versions a crash may have lost.
     pub written_at_ms: i64,
+    /// The consumer group generation the writer held the partition in (-1 when unknown, and
+    /// in snapshots of older writers). A restore prefers the newest generation, so that a
+    /// writer that lost the partition without knowing cannot shadow its new owner's state.
+    #[serde(default = "unknown_generation")]
+    pub group_generation: i32,
+    /// Written as the partition was handed to another member while the writer stayed in the
+    /// group: its counts stay in the writer's counters (see `counts.rs`).
+    #[serde(default)]
+    pub handed_over: bool,
     pub experiments: BTreeMap<String, ExperimentState>,
     /// Duplicate window, oldest first (hashes of event ids).
     pub duplicates: Vec<u64>,
@@ -60,6 +72,8 @@ pub struct SnapshotOut<'a, E: Serialize> {
     pub next_offset: i64,
     pub generation: u64,
     pub written_at_ms: i64,
+    pub group_generation: i32,
+    pub handed_over: bool,
     pub experiments: E,
     pub duplicates: &'a [u64],
     pub counters: &'a Counters,
@@ -69,6 +83,10 @@ impl<E: Serialize> SnapshotOut<'_, E> {
     pub fn encode(&self) -> Result<Vec<u8>, serde_json::Error> {
         serde_json::to_vec(self)
     }
+}
+
+fn unknown_generation() -> i32 {
+    -1
 }
 
 pub fn key(topic: &str, partition: i32) -> String {
@@ -93,6 +111,9 @@ pub struct Pointer {
     pub generation: u64,
     /// 0 or 1: consecutive large snapshots alternate between two sets of part keys.
     pub slot: u64,
+    /// As [`Snapshot::group_generation`], so that candidates compare without their parts.
+    #[serde(default = "unknown_generation")]
+    pub group_generation: i32,
     pub parts: u32,
     pub bytes: u64,
     /// FNV-1a (64 bit) of the joined parts.
@@ -107,6 +128,14 @@ pub enum Stored {
 }
 
 impl Stored {
+    /// The consumer group generation the writer held the partition in.
+    pub fn group_generation(&self) -> i32 {
+        match self {
+            Stored::Whole(s) => s.group_generation,
+            Stored::Parts(p) => p.group_generation,
+        }
+    }
+
     /// Decodes arbitrary bytes without panicking.
     pub fn decode(bytes: &[u8]) -> Result<Stored, String> {
         if bytes.len() <= 4096 {
@@ -119,6 +148,14 @@ impl Stored {
         }
         Snapshot::decode(bytes).map(|s| Stored::Whole(Box::new(s)))
     }
+}
+
+/// Of the snapshots found under one partition's key, as (offset in the state topic, value), the
+/// position of the one to restore: the newest consumer group generation, and of those the one
+/// written last. A member that lost the partition without noticing (a long pause) may write
+/// after the new owner; its generation is older, so it never shadows the owner's snapshot.
+pub fn preferred(candidates: &[(i64, Stored)]) -> Option<usize> {
+    (0..candidates.len()).max_by_key(|&i| (candidates[i].1.group_generation(), candidates[i].0))
 }
 
 /// A part's value: generation (8 bytes, little-endian), index (4 bytes, little-endian), then
@@ -198,6 +235,8 @@ mod tests {
             next_offset: 77,
             generation: 5,
             written_at_ms: 1_764_547_200_000,
+            group_generation: 3,
+            handed_over: true,
             experiments: BTreeMap::new(),
             duplicates: vec![1, 2, 3],
             counters: Counters { events: [("impression/applied".to_string(), 9u64)].into_iter().collect(), ..Counters::default() },
@@ -209,11 +248,40 @@ mod tests {
             next_offset: 77,
             generation: 5,
             written_at_ms: 1_764_547_200_000,
+            group_generation: 3,
+            handed_over: true,
             experiments: BTreeMap::<String, ExperimentState>::new(),
             duplicates: &[1, 2, 3],
             counters: &snap.counters,
         };
         assert_eq!(Snapshot::decode(&out.encode().expect("encodes")), Ok(snap));
+    }
+
+    #[test]
+    fn a_stale_writers_later_snapshot_does_not_shadow_the_new_owners() {
+        let snap = |group_generation: i32, next_offset: i64| {
+            Stored::Whole(Box::new(Snapshot {
+                format: FORMAT,
+                topic: "events".into(),
+                partition: 0,
+                next_offset,
+                generation: 1,
+                written_at_ms: 0,
+                group_generation,
+                handed_over: false,
+                experiments: BTreeMap::new(),
+                duplicates: Vec::new(),
+                counters: Counters::default(),
+            }))
+        };
+        // The new owner (generation 8) wrote at offsets 10 and 12; the paused member
+        // (generation 7) woke and wrote at 13, with an offset far behind.
+        let found = vec![(10, snap(8, 500)), (12, snap(8, 900)), (13, snap(7, 200))];
+        assert_eq!(preferred(&found), Some(1));
+        // Older writers, without generations, keep the last-written rule.
+        let old = vec![(3, snap(-1, 5)), (4, snap(-1, 6))];
+        assert_eq!(preferred(&old), Some(1));
+        assert_eq!(preferred(&[]), None);
     }
 
     #[test]
@@ -225,6 +293,8 @@ mod tests {
             next_offset: 10,
             generation: 4,
             written_at_ms: 0,
+            group_generation: -1,
+            handed_over: false,
             experiments: BTreeMap::new(),
             duplicates: (0..100).collect(),
             counters: Counters::default(),
@@ -236,6 +306,7 @@ mod tests {
             partition: 1,
             generation: 4,
             slot: 0,
+            group_generation: -1,
             parts: 3,
             bytes: bytes.len() as u64,
             checksum: fnv1a(&bytes),

@@ -17,6 +17,7 @@ use rdkafka::statistics::Statistics;
 use rdkafka::types::RDKafkaRespErr;
 use rdkafka::{ClientContext, Offset, TopicPartitionList};
 
+use super::fence::{group_generation, Fence};
 use super::fetch::{Batch, FetchQueue};
 use super::pipeline::{now_ms, Pipeline};
 use crate::shutdown::Shutdown;
@@ -31,6 +32,8 @@ pub struct SourceContext {
     /// Where assigned partitions are routed: set once the consumer exists, before it
     /// subscribes; taken out again before the consumer is dropped.
     pub fetch: Mutex<Option<Arc<FetchQueue>>>,
+    /// Stands before every write round (see `fence.rs`).
+    pub fence: Arc<Fence>,
 }
 
 fn lock(p: &Mutex<Pipeline>) -> MutexGuard<'_, Pipeline> {
@@ -55,7 +58,8 @@ impl ConsumerContext for SourceContext {
         let parts: Vec<i32> = tpl.elements().iter().filter(|e| e.topic() == self.input_topic).map(|e| e.partition()).collect();
         match err {
             RDKafkaRespErr::RD_KAFKA_RESP_ERR__ASSIGN_PARTITIONS => {
-                let offsets = lock(&self.pipeline).assign(&parts);
+                let offsets = lock(&self.pipeline).assign(&parts, group_generation(consumer));
+                self.fence.assigned();
                 let fetch = self.fetch.lock().ok().and_then(|f| f.clone());
                 let mut take = TopicPartitionList::new();
                 for (p, off) in offsets {
@@ -77,7 +81,8 @@ impl ConsumerContext for SourceContext {
                     // Everything is handed back until the group settles: not ready meanwhile.
                     self.served.set_ready(false);
                 }
-                let offsets = lock(&self.pipeline).revoke(&parts);
+                let lost = consumer.assignment_lost();
+                let offsets = lock(&self.pipeline).revoke(&parts, lost);
                 commit(consumer, &self.input_topic, &offsets, CommitMode::Sync);
                 let r = if cooperative { consumer.incremental_unassign(tpl) } else { consumer.unassign() };
                 if let Err(e) = r {
@@ -87,7 +92,7 @@ impl ConsumerContext for SourceContext {
             other => {
                 tracing::error!("rebalance error: {other:?}");
                 let owned = lock(&self.pipeline).owned_partitions();
-                let offsets = lock(&self.pipeline).revoke(&owned);
+                let offsets = lock(&self.pipeline).revoke(&owned, consumer.assignment_lost());
                 commit(consumer, &self.input_topic, &offsets, CommitMode::Sync);
                 let _ = consumer.unassign();
             }
@@ -138,6 +143,7 @@ const PREFETCH_AHEAD: usize = 2;
 /// its assignment.
 pub fn run(consumer: BaseConsumer<SourceContext>, fetch: Arc<FetchQueue>, pipeline: Arc<Mutex<Pipeline>>, shutdown: Shutdown) {
     let topic = consumer.context().input_topic.clone();
+    let fence = consumer.context().fence.clone();
     let mut errors_logged = 0u32;
     // Publishing and snapshots are due on a clock, and event times are checked against the wall
     // clock; both are read after every batch and whenever the consumer is idle, not per message.
@@ -187,9 +193,14 @@ pub fn run(consumer: BaseConsumer<SourceContext>, fetch: Arc<FetchQueue>, pipeli
             }
             p.export_counts();
             wall_ms = now_ms();
-            p.publish_due(false);
-            wait_at_most = p.until_publish().clamp(Duration::from_millis(1), Duration::from_millis(100));
-            p.snapshot_due()
+            wait_at_most = Duration::from_millis(100);
+            if fence.may_write(&consumer) {
+                p.publish_due(false);
+                wait_at_most = p.until_publish().clamp(Duration::from_millis(1), wait_at_most);
+                p.snapshot_due()
+            } else {
+                Vec::new()
+            }
         };
         strays.clear();
         batch.clear();
@@ -204,9 +215,14 @@ pub fn run(consumer: BaseConsumer<SourceContext>, fetch: Arc<FetchQueue>, pipeli
     let offsets = {
         let mut p = lock(&pipeline);
         p.export_counts();
-        p.publish_due(true);
-        let owned = p.owned_partitions();
-        p.snapshot(&owned)
+        p.begin_closing();
+        if fence.may_write(&consumer) {
+            p.publish_due(true);
+            let owned = p.owned_partitions();
+            p.snapshot(&owned, false)
+        } else {
+            Vec::new()
+        }
     };
     commit(&consumer, &topic, &offsets, CommitMode::Sync);
     consumer.unsubscribe();

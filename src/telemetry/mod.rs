@@ -13,6 +13,7 @@ pub struct Metrics {
     pub events: IntCounterVec,
     pub dead_letters: IntCounterVec,
     pub split: IntCounterVec,
+    pub unmatched_rewards: IntCounterVec,
     pub publish_latency: Histogram,
     pub consumer_lag: IntGaugeVec,
     pub snapshot_time: GaugeVec,
@@ -36,6 +37,7 @@ impl Metrics {
             events: reg!(IntCounterVec::new(Opts::new("apportion_events_total", "Events read, by kind and outcome (applied, duplicate, rejected)"), &["kind", "outcome"])?),
             dead_letters: reg!(IntCounterVec::new(Opts::new("apportion_dead_letters_total", "Events sent to the dead-letter topic, by reason"), &["reason"])?),
             split: reg!(IntCounterVec::new(Opts::new("apportion_experiment_split_total", "Events of an experiment seen on more than one input partition"), exp)?),
+            unmatched_rewards: reg!(IntCounterVec::new(Opts::new("apportion_unmatched_rewards_total", "Rewards refused for an arm with no impressions (dead-lettered unknown-arm)"), exp)?),
             publish_latency: reg!(Histogram::with_opts(
                 HistogramOpts::new("apportion_publish_latency_seconds", "From the first event applied after a publish to the next publish of its experiment")
                     .buckets(vec![0.01, 0.05, 0.1, 0.25, 0.5, 1.0, 2.0, 5.0, 10.0, 30.0, 60.0])
@@ -53,6 +55,7 @@ impl Metrics {
     /// Removes the series of an experiment handed to another instance.
     pub fn remove_experiment(&self, experiment: &str) {
         let _ = self.split.remove_label_values(&[experiment]);
+        let _ = self.unmatched_rewards.remove_label_values(&[experiment]);
     }
 
     pub fn encode(&self) -> String {
