@@ -272,7 +272,9 @@ fn small_tie_states(k: usize) -> Vec<Vec<(f64, f64)>> {
 
 #[test]
 fn batch_shares_at_exact_ties_equal_the_expected_sequential_replay() {
-    let rules: [(&str, &dyn Fn(&[ArmInput], u64, &mut [f64]), &dyn Fn(&[ArmInput], u64) -> Vec<f64>); 2] = [
+    type Shares<'f> = &'f dyn Fn(&[ArmInput], u64, &mut [f64]);
+    type Reference<'f> = &'f dyn Fn(&[ArmInput], u64) -> Vec<f64>;
+    let rules: [(&str, Shares, Reference); 2] = [
         ("ucb1", &|a, b, w| apportion::core::policy::batch_shares(&Ucb1, a, b, w), &|a, b| expected_replay(&Ucb1, a, b)),
         ("kl-ucb", &|a, b, w| apportion::core::policy::batch_shares(&KlUcb { c: 0.0 }, a, b, w), &|a, b| {
             expected_replay(&KlUcb { c: 0.0 }, a, b)
@@ -502,7 +504,8 @@ fn bounded_reward_intervals_cover_the_mean_at_small_samples() {
     let max = 300.0;
     // Rewards max·Beta(0.04, 1.96): mostly near 0, rarely large; mean max·0.04/2 (Beta mean a/(a+b)).
     let sparse = Beta::new(0.04, 1.96).expect("valid Beta parameters");
-    let cases: [(&str, f64, Box<dyn Fn(&mut StdRng) -> f64>); 3] = [
+    type Draw = Box<dyn Fn(&mut StdRng) -> f64>;
+    let cases: [(&str, f64, Draw); 3] = [
         ("max·Beta(0.04, 1.96)", max * 0.02, Box::new(move |r: &mut StdRng| max * sparse.sample(r))),
         ("max with probability 0.05, else 0", max * 0.05, Box::new(move |r: &mut StdRng| if r.gen::<f64>() < 0.05 { max } else { 0.0 })),
         ("uniform on [0, max]", max * 0.5, Box::new(move |r: &mut StdRng| max * r.gen::<f64>())),
