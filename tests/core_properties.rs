@@ -206,6 +206,102 @@ fn replay<R: IndexRule>(rule: &R, arms: &[ArmInput], batch: u64) -> Vec<f64> {
     virtual_pulls.iter().map(|v| v / batch as f64).collect()
 }
 
+/// The sequential rule played B times with ties broken uniformly at random, as its exact
+/// expectation: every tie branch is followed with its probability 1/|ties|. Means are held at
+/// their estimates and t is fixed at N + (B − 1)/2 for the whole batch (SPEC.md, "Batch shares").
+/// Returns the expected virtual pulls per arm divided by B.
+///
+/// Ties are split in expectation, not by handing each tied arm a fraction of one pull: a
+/// fractional pull moves the tied arms off their index, so the next step could go to an arm
+/// below the tie, which no run of the sequential rule does.
+fn expected_replay<R: IndexRule>(rule: &R, arms: &[ArmInput], batch: u64) -> Vec<f64> {
+    fn expect<R: IndexRule>(
+        rule: &R,
+        arms: &[ArmInput],
+        t: f64,
+        counts: &mut Vec<u32>,
+        left: u64,
+        memo: &mut std::collections::HashMap<(Vec<u32>, u64), Vec<f64>>,
+    ) -> Vec<f64> {
+        let k = arms.len();
+        if left == 0 {
+            return vec![0.0; k];
+        }
+        if let Some(v) = memo.get(&(counts.clone(), left)) {
+            return v.clone();
+        }
+        let n: Vec<f64> = arms.iter().zip(counts.iter()).map(|(a, &c)| a.pulls + c as f64).collect();
+        let idx = indices(rule, arms, t, &n);
+        let top = idx.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+        let tied: Vec<usize> = (0..k).filter(|&j| idx[j] == top).collect();
+        let mut out = vec![0.0; k];
+        for &j in &tied {
+            counts[j] += 1;
+            let rest = expect(rule, arms, t, counts, left - 1, memo);
+            counts[j] -= 1;
+            out[j] += 1.0 / tied.len() as f64;
+            for (o, r) in out.iter_mut().zip(rest) {
+                *o += r / tied.len() as f64;
+            }
+        }
+        memo.insert((counts.clone(), left), out.clone());
+        out
+    }
+    let t = arms.iter().map(|a| a.pulls).sum::<f64>() + (batch as f64 - 1.0) / 2.0;
+    let mut counts = vec![0u32; arms.len()];
+    let mut memo = std::collections::HashMap::new();
+    expect(rule, arms, t, &mut counts, batch, &mut memo).iter().map(|v| v / batch as f64).collect()
+}
+
+/// Every multiset of `k` arms drawn from small (pulls, successes) states, where exact index ties
+/// are common (equal states, and states whose index sequences meet at a whole count).
+fn small_tie_states(k: usize) -> Vec<Vec<(f64, f64)>> {
+    const STATES: [(f64, f64); 8] = [(0.0, 0.0), (1.0, 0.0), (1.0, 1.0), (2.0, 0.0), (2.0, 1.0), (3.0, 0.0), (3.0, 1.0), (1000.0, 500.0)];
+    let mut out = Vec::new();
+    let mut pick = vec![0usize; k];
+    loop {
+        out.push(pick.iter().map(|&i| STATES[i]).collect());
+        let Some(j) = (0..k).rev().find(|&j| pick[j] + 1 < STATES.len()) else { break };
+        pick[j] += 1;
+        for i in j + 1..k {
+            pick[i] = pick[j];
+        }
+    }
+    out
+}
+
+#[test]
+fn batch_shares_at_exact_ties_equal_the_expected_sequential_replay() {
+    type Shares<'f> = &'f dyn Fn(&[ArmInput], u64, &mut [f64]);
+    type Reference<'f> = &'f dyn Fn(&[ArmInput], u64) -> Vec<f64>;
+    let rules: [(&str, Shares, Reference); 2] = [
+        ("ucb1", &|a, b, w| apportion::core::policy::batch_shares(&Ucb1, a, b, w), &|a, b| expected_replay(&Ucb1, a, b)),
+        ("kl-ucb", &|a, b, w| apportion::core::policy::batch_shares(&KlUcb { c: 0.0 }, a, b, w), &|a, b| {
+            expected_replay(&KlUcb { c: 0.0 }, a, b)
+        }),
+    ];
+    let mut checked = 0;
+    for k in 2..=4 {
+        for arms in small_tie_states(k) {
+            let arm_names = names(k);
+            let input = inputs(&arms, &arm_names);
+            for batch in 1..=8u64 {
+                for (name, shares, reference) in &rules {
+                    let mut w = vec![f64::NAN; k];
+                    shares(&input, batch, &mut w);
+                    let expected = reference(&input, batch);
+                    // The reference is exact arithmetic on the same index function; 1e-9 leaves
+                    // room for rounding only.
+                    let worst = w.iter().zip(&expected).map(|(x, e)| (x - e).abs()).fold(0.0, f64::max);
+                    assert!(worst <= 1e-9, "{name} B = {batch} arms {arms:?}: shares {w:?}, expected replay {expected:?}");
+                    checked += 1;
+                }
+            }
+        }
+    }
+    assert!(checked > 5000, "only {checked} cases");
+}
+
 /// An index policy's own replay of a batch: shares from B literal steps.
 type Replay = Box<dyn Fn(&[ArmInput], u64) -> Vec<f64>>;
 
@@ -377,4 +473,123 @@ fn impossible_pins_and_caps_are_configuration_errors() {
     assert!(all_pinned.validate(&arms).unwrap_err().contains("pinned"));
     let low_cap = Guardrails { cap: Some(0.2), ..Guardrails::default() };
     assert!(low_cap.validate(&arms).unwrap_err().contains("cap"));
+}
+
+/// Share of `reps` seeded samples of `n` rewards whose reported interval holds `true_mean`.
+fn coverage(n: u64, max: f64, true_mean: f64, reps: u32, seed: u64, draw: &dyn Fn(&mut StdRng) -> f64) -> f64 {
+    use apportion::core::report::estimate;
+    use apportion::core::stats::ArmStats;
+    let mut rng = StdRng::seed_from_u64(seed);
+    let mut held = 0;
+    for _ in 0..reps {
+        let mut s = ArmStats::default();
+        s.add_pulls(n, 0, None);
+        for _ in 0..n {
+            s.add_reward(draw(&mut rng), 0, None);
+        }
+        let (_, ci) = estimate(&s, RewardModel::Bounded { max }, 0, None);
+        if ci.low <= true_mean && true_mean <= ci.high {
+            held += 1;
+        }
+    }
+    held as f64 / reps as f64
+}
+
+#[test]
+fn bounded_reward_intervals_cover_the_mean_at_small_samples() {
+    use rand::Rng;
+    use rand_distr::{Beta, Distribution};
+    const REPS: u32 = 2000;
+    // Nominal 95 % (SPEC.md) less three Monte-Carlo standard errors, √(0.95·0.05/2000) each.
+    let required = 0.95 - 3.0 * (0.95f64 * 0.05 / REPS as f64).sqrt();
+    let max = 300.0;
+    // Rewards max·Beta(0.04, 1.96): mostly near 0, rarely large; mean max·0.04/2 (Beta mean a/(a+b)).
+    let sparse = Beta::new(0.04, 1.96).expect("valid Beta parameters");
+    type Draw = Box<dyn Fn(&mut StdRng) -> f64>;
+    let cases: [(&str, f64, Draw); 3] = [
+        ("max·Beta(0.04, 1.96)", max * 0.02, Box::new(move |r: &mut StdRng| max * sparse.sample(r))),
+        ("max with probability 0.05, else 0", max * 0.05, Box::new(move |r: &mut StdRng| if r.gen::<f64>() < 0.05 { max } else { 0.0 })),
+        ("uniform on [0, max]", max * 0.5, Box::new(move |r: &mut StdRng| max * r.gen::<f64>())),
+    ];
+    let mut table = Vec::new();
+    for (name, mean, draw) in &cases {
+        for (i, n) in [5u64, 10, 30, 100].into_iter().enumerate() {
+            let c = coverage(n, max, *mean, REPS, 7 + i as u64, draw.as_ref());
+            table.push(format!("{name} n={n}: {c:.3}"));
+            assert!(c >= required, "{name}, n = {n}: coverage {c} below {required} ({})", table.join("; "));
+        }
+    }
+    eprintln!("bounded interval coverage: {}", table.join("; "));
+}
+
+#[test]
+fn equal_bounded_rewards_do_not_give_a_point_interval() {
+    use apportion::core::report::estimate;
+    use apportion::core::stats::ArmStats;
+    let mut s = ArmStats::default();
+    s.add_pulls(2, 0, None);
+    s.add_reward(0.0, 0, None);
+    s.add_reward(0.0, 0, None);
+    let (mean, ci) = estimate(&s, RewardModel::Bounded { max: 300.0 }, 0, None);
+    assert_eq!(mean, 0.0);
+    assert!(ci.high > 0.0, "two zero rewards of at most 300 cannot pin the mean to 0: {ci:?}");
+}
+
+#[test]
+fn the_mean_lies_in_its_own_interval_when_rewards_precede_impressions() {
+    use apportion::core::report::estimate;
+    use apportion::core::stats::ArmStats;
+    for model in [RewardModel::Bounded { max: 10.0 }, RewardModel::Bernoulli] {
+        let mut s = ArmStats::default();
+        for _ in 0..5 {
+            s.add_reward(model.max(), 0, None);
+        }
+        s.add_pulls(2, 1, None);
+        let (mean, ci) = estimate(&s, model, 1, None);
+        assert!(mean <= model.max(), "{model:?}: mean {mean}");
+        assert!(ci.low <= mean && mean <= ci.high, "{model:?}: mean {mean} outside {ci:?}");
+    }
+}
+
+#[test]
+fn a_future_stamped_event_on_one_arm_does_not_shift_that_arm_against_the_others() {
+    let spec = ExperimentSpec { half_life_ms: Some(1000.0), ..ExperimentSpec::new(PolicySpec::new(PolicyName::Ucb1), RewardModel::Bounded { max: 1.0 }) };
+    let mut e = Experiment::new(spec, &names(2)).expect("experiment");
+    for j in 0..2 {
+        e.observe(j, 0, Observation::Impression { count: 40 }).expect("impression");
+        for _ in 0..10 {
+            e.observe(j, 0, Observation::Reward { value: 1.0 }).expect("reward");
+        }
+    }
+    // A reward of 0 stamped two half-lives ahead of the clock, on arm 0 only.
+    e.observe(0, 3000, Observation::Reward { value: 0.0 }).expect("reward");
+    let inputs = e.inputs(1000);
+    assert!((inputs[0].pulls - inputs[1].pulls).abs() < 1e-12, "pulls {} vs {}", inputs[0].pulls, inputs[1].pulls);
+    // Both discounted to the newest event time, 3000 ms: 40·2^(−3) (arithmetic).
+    assert!((inputs[1].pulls - 5.0).abs() < 1e-12, "{}", inputs[1].pulls);
+    let w = e.weights(1000, 100);
+    assert!((w[0] - w[1]).abs() < 1e-12, "{w:?}");
+}
+
+#[test]
+fn the_regret_estimate_under_decay_prices_every_pull_at_the_current_gap() {
+    let spec = ExperimentSpec { half_life_ms: Some(1000.0), ..ExperimentSpec::new(PolicySpec::new(PolicyName::Ucb1), RewardModel::Bernoulli) };
+    let mut e = Experiment::new(spec, &names(2)).expect("experiment");
+    e.observe(1, 0, Observation::Impression { count: 100 }).expect("impression");
+    e.observe(1, 10_000, Observation::Impression { count: 10 }).expect("impression");
+    for _ in 0..10 {
+        e.observe(1, 10_000, Observation::Reward { value: 1.0 }).expect("reward");
+    }
+    e.observe(0, 10_000, Observation::Impression { count: 50 }).expect("impression");
+    for _ in 0..25 {
+        e.observe(0, 10_000, Observation::Reward { value: 1.0 }).expect("reward");
+    }
+    let r = e.report(10_000);
+    // Arm 1's discounted mean: 10 / (10 + 100·2^(−10)) (arithmetic); arm 0's 25/50.
+    let leader_mean = 10.0 / (10.0 + 100.0 * (-10.0f64).exp2());
+    assert_eq!(r.leader, Some(1));
+    assert!((r.arms[1].mean - leader_mean).abs() < 1e-12);
+    // Σⱼ nⱼ·(μ̂_leader − μ̂ⱼ) with nⱼ every pull ever made (SPEC.md, the cumulative estimate).
+    let expected = 50.0 * (leader_mean - 0.5);
+    assert!((r.regret_estimate - expected).abs() < 1e-9, "{} vs {expected}", r.regret_estimate);
 }

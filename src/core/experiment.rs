@@ -7,7 +7,7 @@ use super::guardrails::Guardrails;
 use super::policy::{ArmInput, Policy, PolicySpec};
 use super::report::{report, Report};
 use super::reward::RewardModel;
-use super::stats::ArmStats;
+use super::stats::{reference_ms, ArmStats};
 
 /// How an experiment is run: everything that comes from configuration.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
@@ -223,11 +223,12 @@ impl Experiment {
     /// What the policy sees, as of `now_ms`.
     pub fn inputs(&self, now_ms: i64) -> Vec<ArmInput<'_>> {
         let max = self.spec.reward.max();
+        let reference = reference_ms(&self.stats, now_ms);
         self.names
             .iter()
             .zip(&self.stats)
             .map(|(name, s)| {
-                let (pulls, reward, _) = s.at(now_ms, self.spec.half_life_ms);
+                let (pulls, reward, _) = s.at(reference, self.spec.half_life_ms);
                 ArmInput { name, pulls, successes: (reward / max).min(pulls) }
             })
             .collect()
@@ -235,7 +236,7 @@ impl Experiment {
 
     /// Per-arm means, intervals, leader and regret estimate as of `now_ms`.
     pub fn report(&self, now_ms: i64) -> Report {
-        report(self.stats.iter(), self.spec.reward, now_ms, self.spec.half_life_ms)
+        report(&self.stats, self.spec.reward, now_ms, self.spec.half_life_ms)
     }
 
     /// The arm one impression would go to (the simulator's batches of one).

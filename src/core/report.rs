@@ -3,9 +3,9 @@
 
 use serde::Serialize;
 
-use super::interval::{bounded_normal, wilson, Interval};
+use super::interval::{clamp_sum, empirical_bernstein, wilson, Interval};
 use super::reward::RewardModel;
-use super::stats::{ArmStats, HalfLife};
+use super::stats::{reference_ms, ArmStats, HalfLife};
 
 /// What is reported of one arm.
 #[derive(Clone, Debug, PartialEq, Serialize)]
@@ -39,36 +39,35 @@ pub struct Report {
     /// arm on ties); `None` before any pull.
     pub leader: Option<usize>,
     /// Σⱼ nⱼ·(μ̂_leader − μ̂ⱼ) in reward units: an estimate of the pseudo-regret so far, taken with
-    /// the estimates of the moment (so it can move down as well as up).
+    /// the estimates of the moment (so it can move down as well as up). nⱼ counts every pull ever
+    /// made, so the figure stays cumulative; under decay μ̂ are the discounted means, the
+    /// estimates of the moment, so every past pull is priced at the gap as it is estimated now
+    /// (the pseudo-regret had today's means held throughout), not at the gap of its own time.
     pub regret_estimate: f64,
 }
 
-/// Mean and interval of one arm in reward units, as of `now_ms`.
-pub fn estimate(stats: &ArmStats, model: RewardModel, now_ms: i64, half_life: HalfLife) -> (f64, Interval) {
-    let (n, sum, sum_sq) = stats.at(now_ms, half_life);
-    match model {
-        RewardModel::Bernoulli => {
-            let s = sum.min(n);
-            let mean = if n > 0.0 { s / n } else { 0.0 };
-            (mean, wilson(s, n))
-        }
-        RewardModel::Bounded { max } => {
-            let mean = if n > 0.0 { sum / n } else { 0.0 };
-            (mean, bounded_normal(n, sum, sum_sq, max))
-        }
-    }
+/// Mean and interval of one arm in reward units, its sums discounted to `reference_ms` (see
+/// [`reference_ms`]). The reward sum is clamped to `max` per pull, so the mean stays in the
+/// reward range and inside its own interval.
+pub fn estimate(stats: &ArmStats, model: RewardModel, reference_ms: i64, half_life: HalfLife) -> (f64, Interval) {
+    let (n, sum, sum_sq) = stats.at(reference_ms, half_life);
+    let s = clamp_sum(n, sum, model.max());
+    let mean = if n > 0.0 { s / n } else { 0.0 };
+    let ci = match model {
+        RewardModel::Bernoulli => wilson(s, n),
+        RewardModel::Bounded { max } => empirical_bernstein(n, s, sum_sq, max),
+    };
+    (mean, ci)
 }
 
-/// Builds the report of arms with `stats`.
-pub fn report<'a>(
-    stats: impl Iterator<Item = &'a ArmStats>,
-    model: RewardModel,
-    now_ms: i64,
-    half_life: HalfLife,
-) -> Report {
+/// Builds the report of arms with `stats` at `now_ms`, every arm discounted to one reference
+/// time.
+pub fn report(stats: &[ArmStats], model: RewardModel, now_ms: i64, half_life: HalfLife) -> Report {
+    let reference = reference_ms(stats, now_ms);
     let mut arms: Vec<ArmReport> = stats
+        .iter()
         .map(|s| {
-            let (mean, ci) = estimate(s, model, now_ms, half_life);
+            let (mean, ci) = estimate(s, model, reference, half_life);
             ArmReport {
                 pulls: s.pulls_total,
                 reward: s.reward_total,

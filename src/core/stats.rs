@@ -94,6 +94,15 @@ impl ArmStats {
     }
 }
 
+/// The one time every arm of an experiment is discounted to when its figures are taken at
+/// `now_ms`: `now_ms`, or the newest event time of any arm when that is later (an event may be
+/// stamped up to the allowed skew ahead of the clock). A common reference keeps the arms'
+/// effective counts comparable: discounting each arm to its own newest event would leave an
+/// arm that saw a future-stamped event 2^(skew/half-life) heavier than the others.
+pub fn reference_ms(stats: &[ArmStats], now_ms: i64) -> i64 {
+    stats.iter().map(|s| s.as_of_ms).fold(now_ms, i64::max)
+}
+
 /// 2^(−age / half_life).
 fn decay_factor(age_ms: f64, half_life_ms: f64) -> f64 {
     (-age_ms / half_life_ms).exp2()

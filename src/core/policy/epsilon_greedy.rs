@@ -4,7 +4,7 @@
 
 use rand::{Rng, RngCore};
 
-use super::{argmax_random_tie, leaders, ArmInput, Policy};
+use super::{leaders, ArmInput, Policy};
 
 #[derive(Clone, Copy, Debug)]
 pub struct EpsilonGreedy {
@@ -69,7 +69,8 @@ impl Policy for EpsilonGreedy {
         if rng.gen::<f64>() < self.epsilon(done.floor() + 1.0, arms.len()) {
             rng.gen_range(0..arms.len())
         } else {
-            argmax_random_tie(arms.iter().map(ArmInput::mean), rng)
+            let lead = leaders(arms);
+            lead[rng.gen_range(0..lead.len())]
         }
     }
 }
@@ -77,6 +78,34 @@ impl Policy for EpsilonGreedy {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn a_never_pulled_arm_gets_only_its_exploration_share_beside_a_pulled_arm() {
+        let p = EpsilonGreedy { c: 6.0, d: 0.05 };
+        let arms = [
+            ArmInput { name: "old", pulls: 1e6, successes: 0.0 },
+            ArmInput { name: "new", pulls: 0.0, successes: 0.0 },
+        ];
+        let mut w = [0.0; 2];
+        p.weights(&arms, 1, &mut w);
+        // εₜ = min(1, cK/(d²t)) at play t = 10⁶ + 1 (Auer, Cesa-Bianchi & Fischer 2002, εₙ-greedy);
+        // the new arm gets εₜ/K, the pulled arm the rest. The tolerance covers the difference of two
+        // harmonic-number expansions in mean_epsilon (≈ 1e-12 here).
+        let eps = 6.0 * 2.0 / (0.05f64 * 0.05 * 1_000_001.0);
+        assert!((w[1] - eps / 2.0).abs() < 1e-10, "{w:?}");
+        assert!((w[0] - (1.0 - eps / 2.0)).abs() < 1e-10, "{w:?}");
+        let mut rng = rand::rngs::mock::StepRng::new(u64::MAX / 2, 0);
+        assert_eq!(p.choose(&arms, &mut rng), 0, "exploitation goes to the pulled arm");
+    }
+
+    #[test]
+    fn before_any_pull_every_arm_leads() {
+        let p = EpsilonGreedy { c: 6.0, d: 0.05 };
+        let arms = [ArmInput { name: "a", pulls: 0.0, successes: 0.0 }, ArmInput { name: "b", pulls: 0.0, successes: 0.0 }];
+        let mut w = [0.0; 2];
+        p.weights(&arms, 1, &mut w);
+        assert_eq!(w, [0.5, 0.5]);
+    }
 
     #[test]
     fn harmonic_expansion_meets_the_direct_sum() {

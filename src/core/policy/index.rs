@@ -7,8 +7,9 @@
 //! Computed without the B steps: with the mean held, an arm's index falls with every virtual
 //! pull, so the B steps take the B largest values among all arms' decreasing index sequences.
 //! A bisection finds the level λ* of the B-th largest value from the closed-form count of each
-//! arm's values above a level, and the last few pulls at the level go out one by one, ties
-//! split. The exploration term uses t at the middle of the batch, N + (B − 1)/2, which for a
+//! arm's values above a level, and the last few pulls at the level go out one by one. Exact
+//! ties at the level are split evenly: r pulls left for m tied values give each r/m, the
+//! expectation of the sequential rule's uniformly random tie-break. The exploration term uses t at the middle of the batch, N + (B − 1)/2, which for a
 //! batch of one is exactly the sequential rule.
 
 use rand::RngCore;
@@ -75,13 +76,13 @@ pub fn batch_shares<R: IndexRule>(rule: &R, arms: &[ArmInput], batch: u64, out: 
 /// Virtual pulls per arm for `remaining` steps, every arm already having pulls > 0.
 fn play_forward<R: IndexRule>(rule: &R, means: &[f64], base: &[f64], remaining: f64, budget: f64) -> Vec<f64> {
     let k = means.len();
+    let cap = remaining.ceil();
     let count_above = |level: f64, out: &mut [f64]| -> f64 {
         let mut total = 0.0;
         for j in 0..k {
-            // Within 1e-9 of a whole count is that count: rounding must not invent a value.
-            let c = (rule.pulls_at(means[j], level, budget) - base[j] - 1e-9).ceil().clamp(0.0, remaining);
-            out[j] = c;
-            total += c;
+            let c = values_above(rule, means[j], base[j], level, budget, cap);
+            out[j] = c.min(remaining);
+            total += out[j];
         }
         total
     };
@@ -105,7 +106,8 @@ fn play_forward<R: IndexRule>(rule: &R, means: &[f64], base: &[f64], remaining: 
     }
     let above = count_above(hi, &mut counts);
     if above > remaining {
-        // Only reachable through rounding in pulls_at; keep the shares honest regardless.
+        // Unreachable while the index falls with the pulls (count_above(hi) < remaining is the
+        // bisection's invariant); keep the shares honest regardless.
         counts.iter_mut().for_each(|c| *c *= remaining / above);
         return counts;
     }
@@ -125,4 +127,23 @@ fn play_forward<R: IndexRule>(rule: &R, means: &[f64], base: &[f64], remaining: 
         left -= each * n;
     }
     counts
+}
+
+/// How many of an arm's next values, index(mean, base + m) for m = 0, 1, …, lie strictly above
+/// `level`, at most `cap`. The inverse `pulls_at` places the count; where it lands on a whole
+/// count, its rounding decides whether the value at the level counts, so the index itself is
+/// asked. An exact tie at the level must be left to the tie split, not counted above it (or
+/// dropped) for one arm and not for an equal one.
+fn values_above<R: IndexRule>(rule: &R, mean: f64, base: f64, level: f64, budget: f64, cap: f64) -> f64 {
+    let estimate = rule.pulls_at(mean, level, budget) - base;
+    let mut c = estimate.ceil().clamp(0.0, cap);
+    if (estimate - estimate.round()).abs() <= 1e-6 * estimate.abs().max(1.0) {
+        while c > 0.0 && rule.index(mean, base + c - 1.0, budget) <= level {
+            c -= 1.0;
+        }
+        while c < cap && rule.index(mean, base + c, budget) > level {
+            c += 1.0;
+        }
+    }
+    c
 }

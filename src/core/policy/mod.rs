@@ -283,8 +283,12 @@ pub(crate) fn argmax_random_tie(values: impl Iterator<Item = f64>, rng: &mut dyn
     choice
 }
 
-/// Indices of the arms with the highest estimated mean (all of them when nothing was pulled).
+/// Indices of the arms with the highest estimated mean among the arms with pulls (all arms when
+/// nothing was pulled). A never-pulled arm has no estimate: its mean of 0 is a placeholder, and
+/// counting it as a leader would hand it the exploitation share of every arm whose estimate is 0.
 pub(crate) fn leaders(arms: &[ArmInput]) -> Vec<usize> {
-    let best = arms.iter().map(ArmInput::mean).fold(f64::NEG_INFINITY, f64::max);
-    (0..arms.len()).filter(|&i| arms[i].mean() == best).collect()
+    let any_pulled = arms.iter().any(|a| a.pulls > 0.0);
+    let eligible = |a: &ArmInput| !any_pulled || a.pulls > 0.0;
+    let best = arms.iter().filter(|a| eligible(a)).map(ArmInput::mean).fold(f64::NEG_INFINITY, f64::max);
+    (0..arms.len()).filter(|&i| eligible(&arms[i]) && arms[i].mean() == best).collect()
 }
