@@ -10,11 +10,13 @@ use clap::{Parser, Subcommand};
 use indicatif::{ProgressBar, ProgressStyle};
 
 use crate::config::{self, Config, ConfigError, ResolvedExperiment};
+use crate::console::{self, Unwritable};
 use crate::core::{PolicySpec, RewardModel};
 use crate::shutdown::Shutdown;
 use crate::telemetry::http::Served;
-use crate::telemetry::Metrics;
 use crate::sim::{self, SimSpec};
+use crate::telemetry::Metrics;
+use crate::{say, sayln};
 
 #[derive(Parser, Debug)]
 #[command(name = "apportion", version, about = "Allocates live traffic between experiment arms with bandit policies")]
@@ -155,36 +157,43 @@ fn check(path: Option<PathBuf>) -> ExitCode {
             return ExitCode::from(2);
         }
     };
-    println!("kafka: brokers {}, group {}", cfg.kafka.brokers, cfg.kafka.group_id);
-    println!(
+    match print_check(&cfg) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => console::exit_code("check", &e),
+    }
+}
+
+fn print_check(cfg: &Config) -> Result<(), Unwritable> {
+    sayln!("kafka: brokers {}, group {}", cfg.kafka.brokers, cfg.kafka.group_id)?;
+    sayln!(
         "topics: input {}, weights {}, state {}, dead letters {}",
         cfg.kafka.input_topic, cfg.kafka.weights_topic, cfg.kafka.state_topic, cfg.kafka.dead_letter_topic
-    );
+    )?;
     for (k, v) in cfg.client_redacted() {
-        println!("client: {k} = {v}");
+        sayln!("client: {k} = {v}")?;
     }
-    println!(
+    sayln!(
         "publish every {}s (heartbeat {}s, min change {}), snapshot every {}s, metrics on {}",
         cfg.publish.interval_seconds,
         cfg.publish.heartbeat_seconds,
         cfg.publish.min_change,
         cfg.snapshot.interval_seconds,
         cfg.metrics.listen
-    );
+    )?;
     match cfg.resolve_default_spec() {
         Ok(spec) if cfg.defaults.auto_create => {
             let d = ResolvedExperiment { id: "(created on first sight)".into(), arms: Vec::new(), spec };
-            println!("defaults: {d}");
+            sayln!("defaults: {d}")?;
         }
-        _ => println!("defaults: experiments must be declared (auto_create is off)"),
+        _ => sayln!("defaults: experiments must be declared (auto_create is off)")?,
     }
     for r in cfg.resolved() {
-        println!("experiment {r}");
+        sayln!("experiment {r}")?;
     }
     for w in cfg.warnings() {
-        println!("warning: {w}");
+        sayln!("warning: {w}")?;
     }
-    ExitCode::SUCCESS
+    Ok(())
 }
 
 fn simulate(args: SimulateArgs) -> ExitCode {
@@ -222,25 +231,32 @@ fn simulate(args: SimulateArgs) -> ExitCode {
             return ExitCode::from(2);
         }
     };
-    if args.json {
-        match serde_json::to_string(&report) {
-            Ok(s) => println!("{s}"),
+    match print_simulation(&report, args.json, args.plot.as_deref()) {
+        Ok(code) => code,
+        Err(e) => console::exit_code("simulate", &e),
+    }
+}
+
+fn print_simulation(report: &sim::SimReport, json: bool, plot: Option<&Path>) -> Result<ExitCode, Unwritable> {
+    if json {
+        match serde_json::to_string(report) {
+            Ok(s) => sayln!("{s}")?,
             Err(e) => {
                 eprintln!("apportion simulate: cannot write JSON: {e}");
-                return ExitCode::FAILURE;
+                return Ok(ExitCode::FAILURE);
             }
         }
     } else {
-        print!("{}", sim::output::table(&report));
+        say!("{}", sim::output::table(report))?;
     }
-    if let Some(path) = args.plot {
-        if let Err(e) = sim::output::plot(&report, &path) {
+    if let Some(path) = plot {
+        if let Err(e) = sim::output::plot(report, path) {
             eprintln!("apportion simulate: {e}");
-            return ExitCode::FAILURE;
+            return Ok(ExitCode::FAILURE);
         }
-        if !args.json {
-            println!("plot written to {}", path.display());
+        if !json {
+            sayln!("plot written to {}", path.display())?;
         }
     }
-    ExitCode::SUCCESS
+    Ok(ExitCode::SUCCESS)
 }

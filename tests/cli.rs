@@ -112,3 +112,28 @@ fn the_demo_ends_with_the_best_arm_of_each_experiment_holding_the_largest_weight
     // The demo's own scenario (config/demo.toml, src/demo/scenario.rs) has three experiments.
     assert_eq!(text.matches("— found").count(), 3, "{text}");
 }
+
+/// Runs the command with stdout a pipe whose reading end is closed before anything is written.
+fn run_into_closed_pipe(args: &[&str]) -> std::process::Output {
+    let mut child = apportion()
+        .args(args)
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    drop(child.stdout.take());
+    child.wait_with_output().unwrap()
+}
+
+#[test]
+fn a_closed_stdout_ends_each_printing_command_quietly() {
+    let sim = ["simulate", "--arms", "0.05,0.04", "--policies", "ucb1", "--horizon", "200", "--runs", "2"];
+    let sim_json = [&sim[..], &["--json"]].concat();
+    let check = ["check", "--config", "config/apportion.toml"];
+    for args in [&sim[..], &sim_json[..], &check[..]] {
+        let out = run_into_closed_pipe(args);
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert_eq!(out.status.code(), Some(0), "{args:?}: {err}");
+        assert!(!err.contains("panicked") && !err.contains("Broken pipe"), "{args:?}: {err}");
+    }
+}
