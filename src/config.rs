@@ -324,6 +324,7 @@ impl Config {
         if !["text", "json"].contains(&self.log.format.as_str()) {
             return Err(format!("log.format = {:?}; valid: text, json", self.log.format));
         }
+        crate::telemetry::log_filter(&self.log.level)?;
         let d = &self.defaults;
         if !d.guardrails.pinned.is_empty() {
             return Err("defaults.guardrails.pinned: experiments created on first sight have no declared arms to pin".into());

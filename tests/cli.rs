@@ -137,3 +137,69 @@ fn a_closed_stdout_ends_each_printing_command_quietly() {
         assert!(!err.contains("panicked") && !err.contains("Broken pipe"), "{args:?}: {err}");
     }
 }
+
+/// A loopback port nothing listens on: bound, then closed.
+fn closed_port() -> u16 {
+    let l = std::net::TcpListener::bind("127.0.0.1:0").unwrap();
+    l.local_addr().unwrap().port()
+}
+
+/// What `run` logs on stderr (a pipe) until a line contains `until`, or a minute has passed;
+/// then the process is killed. The broker is unreachable, which `run` survives by retrying.
+fn startup_log(config_text: &str, until: &str) -> String {
+    use std::io::BufRead;
+    let p = write_config("run.toml", config_text);
+    let mut child = apportion()
+        .args(["run", "--config"])
+        .arg(p.path())
+        .env("APPORTION_KAFKA__BROKERS", format!("127.0.0.1:{}", closed_port()))
+        .env("APPORTION_METRICS__LISTEN", "127.0.0.1:0")
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    let stderr = child.stderr.take().unwrap();
+    let (tx, rx) = std::sync::mpsc::channel();
+    std::thread::spawn(move || {
+        for line in std::io::BufReader::new(stderr).lines().map_while(Result::ok) {
+            if tx.send(line).is_err() {
+                break;
+            }
+        }
+    });
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(60);
+    let mut text = String::new();
+    while let Some(left) = deadline.checked_duration_since(std::time::Instant::now()) {
+        match rx.recv_timeout(left) {
+            Ok(line) => {
+                text.push_str(&line);
+                text.push('\n');
+                if line.contains(until) {
+                    break;
+                }
+            }
+            Err(_) => break,
+        }
+    }
+    let _ = child.kill();
+    let _ = child.wait();
+    text
+}
+
+#[test]
+fn a_log_level_that_is_no_filter_exits_2_naming_key_value_and_the_valid_levels() {
+    let p = write_config("loud.toml", "[log]\nlevel = \"loud\"\n");
+    for cmd in ["check", "run"] {
+        let out = apportion().args([cmd, "--config"]).arg(p.path()).output().unwrap();
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert_eq!(out.status.code(), Some(2), "{cmd}: {err}");
+        assert!(err.contains("log.level") && err.contains("\"loud\"") && err.contains("debug, info, warn"), "{cmd}: {err}");
+    }
+}
+
+#[test]
+fn text_logs_into_a_pipe_carry_no_colour_codes() {
+    let log = startup_log("[log]\nlevel = \"info\"\n", "metrics on");
+    assert!(log.contains("metrics on"), "{log}");
+    assert!(!log.contains('\u{1b}'), "{log:?}");
+}
