@@ -9,7 +9,7 @@ use std::sync::Arc;
 use clap::{Parser, Subcommand};
 use indicatif::{ProgressBar, ProgressStyle};
 
-use crate::config::{self, Config, ConfigError, ResolvedExperiment};
+use crate::config::{self, Config, ConfigError, ResolvedExperiment, Source};
 use crate::console::{self, Unwritable};
 use crate::core::{PolicySpec, RewardModel};
 use crate::shutdown::Shutdown;
@@ -91,16 +91,21 @@ pub fn main() -> ExitCode {
     }
 }
 
-/// Loads the configuration named on the command line, or the default file when it exists.
-pub fn load_config(path: Option<PathBuf>) -> Result<Config, ConfigError> {
+/// Loads the configuration named on the command line, or the default file when it exists,
+/// and says which it was.
+pub fn load_config(path: Option<PathBuf>) -> Result<(Config, Source), ConfigError> {
     match path {
-        Some(p) => Config::load(&p, true),
-        None => Config::load(Path::new(config::DEFAULT_PATH), false),
+        Some(p) => Ok((Config::load(&p, true)?, Source::File(p))),
+        None => {
+            let default = Path::new(config::DEFAULT_PATH);
+            let source = if default.exists() { Source::File(default.to_path_buf()) } else { Source::BuiltIn };
+            Ok((Config::load(default, false)?, source))
+        }
     }
 }
 
 fn run(path: Option<PathBuf>) -> ExitCode {
-    let cfg = match load_config(path) {
+    let (cfg, source) = match load_config(path) {
         Ok(c) => c,
         Err(e) => {
             eprintln!("apportion run: {e}");
@@ -108,6 +113,15 @@ fn run(path: Option<PathBuf>) -> ExitCode {
         }
     };
     crate::telemetry::init_logging(&cfg.log.format, &cfg.log.level);
+    tracing::info!("{source}");
+    tracing::info!("defaults: {}", first_sight(&cfg));
+    let declared = cfg.resolved();
+    if declared.is_empty() {
+        tracing::info!("no declared experiments");
+    }
+    for r in declared {
+        tracing::info!("experiment {r}");
+    }
     for w in cfg.warnings() {
         tracing::warn!("{w}");
     }
@@ -150,20 +164,21 @@ pub async fn serve_sidecar_with(cfg: Config, served: Arc<Served>, shutdown: Shut
 }
 
 fn check(path: Option<PathBuf>) -> ExitCode {
-    let cfg = match load_config(path) {
+    let (cfg, source) = match load_config(path) {
         Ok(c) => c,
         Err(e) => {
             eprintln!("apportion check: {e}");
             return ExitCode::from(2);
         }
     };
-    match print_check(&cfg) {
+    match print_check(&cfg, &source) {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => console::exit_code("check", &e),
     }
 }
 
-fn print_check(cfg: &Config) -> Result<(), Unwritable> {
+fn print_check(cfg: &Config, source: &Source) -> Result<(), Unwritable> {
+    sayln!("{source}")?;
     sayln!("kafka: brokers {}, group {}", cfg.kafka.brokers, cfg.kafka.group_id)?;
     sayln!(
         "topics: input {}, weights {}, state {}, dead letters {}",
@@ -180,13 +195,7 @@ fn print_check(cfg: &Config) -> Result<(), Unwritable> {
         cfg.snapshot.interval_seconds,
         cfg.metrics.listen
     )?;
-    match cfg.resolve_default_spec() {
-        Ok(spec) if cfg.defaults.auto_create => {
-            let d = ResolvedExperiment { id: "(created on first sight)".into(), arms: Vec::new(), spec };
-            sayln!("defaults: {d}")?;
-        }
-        _ => sayln!("defaults: experiments must be declared (auto_create is off)")?,
-    }
+    sayln!("defaults: {}", first_sight(cfg))?;
     for r in cfg.resolved() {
         sayln!("experiment {r}")?;
     }
@@ -194,6 +203,16 @@ fn print_check(cfg: &Config) -> Result<(), Unwritable> {
         sayln!("warning: {w}")?;
     }
     Ok(())
+}
+
+/// How experiments that were not declared are run.
+fn first_sight(cfg: &Config) -> String {
+    match cfg.resolve_default_spec() {
+        Ok(spec) if cfg.defaults.auto_create => {
+            ResolvedExperiment { id: "(created on first sight)".into(), arms: Vec::new(), spec }.to_string()
+        }
+        _ => "experiments must be declared (auto_create is off)".into(),
+    }
 }
 
 fn simulate(args: SimulateArgs) -> ExitCode {

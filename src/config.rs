@@ -6,7 +6,7 @@
 
 use std::collections::BTreeMap;
 use std::fmt;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
@@ -15,6 +15,33 @@ use crate::event::valid_name;
 
 /// Default location of the configuration file.
 pub const DEFAULT_PATH: &str = "config/apportion.toml";
+
+/// Where a configuration was read from; `check` prints it and `run` logs it at start, so that
+/// nobody has to guess which file (if any) is in force.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Source {
+    File(PathBuf),
+    /// No file was named and the default one does not exist.
+    BuiltIn,
+}
+
+impl fmt::Display for Source {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Source::File(p) => write!(f, "configuration: {}", p.display())?,
+            Source::BuiltIn => write!(f, "no configuration file ({DEFAULT_PATH} does not exist); using built-in defaults")?,
+        }
+        let mut overrides: Vec<String> = std::env::vars_os()
+            .filter_map(|(k, _)| k.into_string().ok())
+            .filter(|k| k.starts_with("APPORTION_"))
+            .collect();
+        overrides.sort();
+        if !overrides.is_empty() {
+            write!(f, "; overridden by {}", overrides.join(", "))?;
+        }
+        Ok(())
+    }
+}
 
 /// A configuration problem, for people: where, what, and what would be valid.
 #[derive(Debug, thiserror::Error)]

@@ -203,3 +203,26 @@ fn text_logs_into_a_pipe_carry_no_colour_codes() {
     assert!(log.contains("metrics on"), "{log}");
     assert!(!log.contains('\u{1b}'), "{log:?}");
 }
+
+#[test]
+fn check_says_which_configuration_file_it_read_or_that_it_used_the_defaults() {
+    let out = apportion().args(["check", "--config", "config/apportion.toml"]).output().unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success() && text.contains("configuration: config/apportion.toml"), "{text}");
+    let empty = std::env::temp_dir().join(format!("apportion-cli-{:016x}", rand::random::<u64>()));
+    std::fs::create_dir_all(&empty).unwrap();
+    let out = apportion().arg("check").current_dir(&empty).output().unwrap();
+    let _ = std::fs::remove_dir_all(&empty);
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success() && text.contains("no configuration file") && text.contains("built-in defaults"), "{text}");
+}
+
+#[test]
+fn run_logs_its_configuration_file_and_the_declared_experiments_at_start() {
+    let log = startup_log(
+        "[[experiments]]\nid = \"hero\"\narms = [\"a\", \"b\"]\n\n[[experiments]]\nid = \"ranker\"\narms = [\"x\", \"y\"]\n",
+        "metrics on",
+    );
+    assert!(log.contains("configuration: ") && log.contains("run.toml"), "{log}");
+    assert!(log.contains("experiment hero") && log.contains("experiment ranker"), "{log}");
+}
