@@ -55,6 +55,13 @@ fn each_configuration_error_exits_2_naming_the_key() {
         ("[[experiments]]\nid = \"bad id\"\n", "experiments[0].id"),
         ("[[experiments]]\nid = \"x\"\nreward = { kind = \"bounded\", max = 0 }\n", "max"),
         ("[kafka.client]\n\"group.id\" = \"other\"\n", "group.id"),
+        ("[log]\nlevel = \"loud\"\n", "log.level"),
+        ("[[experiments]]\nid = \"x\"\nguardrails = { flor = 0.1 }\n", "`experiments[0].guardrails`"),
+        ("[[experiments]]\nid = \"x\"\narms = [\"a\", \"a\"]\n", "experiments[0].arms"),
+        (
+            "[[experiments]]\nid = \"x\"\narms = [\"a\", \"b\"]\npolicy = { name = \"fixed\", weights = { a = 0.5, zz = 0.5 } }\n",
+            "experiments[0].policy.weights.zz",
+        ),
     ];
     for (text, key) in cases {
         let p = write_config("bad.toml", text);
@@ -65,6 +72,11 @@ fn each_configuration_error_exits_2_naming_the_key() {
     }
     let out = apportion().args(["check", "--config", "/nonexistent/apportion.toml"]).output().unwrap();
     assert_eq!(out.status.code(), Some(2));
+    let dir = std::env::temp_dir();
+    let out = apportion().args(["check", "--config"]).arg(&dir).output().unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{err}");
+    assert!(err.contains("is a directory") && !err.contains("not found"), "{err}");
     let out = apportion().args(["run", "--config", "/nonexistent/apportion.toml"]).output().unwrap();
     assert_eq!(out.status.code(), Some(2), "run refuses before starting anything");
 }
@@ -225,4 +237,15 @@ fn run_logs_its_configuration_file_and_the_declared_experiments_at_start() {
     );
     assert!(log.contains("configuration: ") && log.contains("run.toml"), "{log}");
     assert!(log.contains("experiment hero") && log.contains("experiment ranker"), "{log}");
+}
+
+#[test]
+fn an_unknown_policy_name_lists_the_valid_names() {
+    let p = write_config("softmax.toml", "[[experiments]]\nid = \"x\"\npolicy = { name = \"softmax\" }\n");
+    let out = apportion().args(["check", "--config"]).arg(p.path()).output().unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{err}");
+    assert!(err.contains("\"softmax\"") && err.contains("experiments[0].policy.name"), "{err}");
+    assert!(apportion::core::PolicyName::ALL.iter().all(|n| err.contains(n.as_str())), "{err}");
+    assert!(!err.contains("variant constructor"), "{err}");
 }

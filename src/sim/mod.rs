@@ -17,7 +17,7 @@ use rand_distr::{Beta, Distribution};
 use serde::Serialize;
 
 use crate::core::kl::bernoulli_kl;
-use crate::core::{Experiment, ExperimentSpec, Observation, PolicySpec, RewardModel};
+use crate::core::{Experiment, ExperimentSpec, Observation, PolicyName, PolicySpec, RewardModel};
 
 /// Concentration κ of the Beta law that bounded arms draw rewards from:
 /// reward = max · X, X ~ Beta(κ·p, κ·(1 − p)), p = mean / max.
@@ -50,7 +50,7 @@ impl SimSpec {
             return Err(format!("--arms value {m} is outside the reward range [0, {max}]"));
         }
         if self.policies.is_empty() {
-            return Err("--policies is empty; name at least one of ucb1, epsilon-greedy, thompson, kl-ucb, fixed".into());
+            return Err(format!("--policies is empty; name at least one of {}", PolicyName::valid_names()));
         }
         for (flag, v) in [("--horizon", self.horizon), ("--runs", self.runs as u64), ("--batch", self.batch)] {
             if v == 0 {
