@@ -75,7 +75,7 @@ pub struct SimulateArgs {
     /// Print one JSON object instead of the table.
     #[arg(long)]
     pub json: bool,
-    /// Also draw mean regret against t to this SVG file.
+    /// Also draw mean regret against t to this SVG file (other extensions are refused).
     #[arg(long, value_name = "FILE.svg")]
     pub plot: Option<PathBuf>,
 }
@@ -226,7 +226,7 @@ fn simulate(args: SimulateArgs) -> ExitCode {
         seed: args.seed,
         threads: args.threads.unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get())),
     };
-    if let Err(e) = spec.validate() {
+    if let Err(e) = spec.validate().and_then(|()| args.plot.as_deref().map_or(Ok(()), sim::output::check_plot_path)) {
         eprintln!("apportion simulate: {e}");
         return ExitCode::from(2);
     }

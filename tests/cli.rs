@@ -249,3 +249,20 @@ fn an_unknown_policy_name_lists_the_valid_names() {
     assert!(apportion::core::PolicyName::ALL.iter().all(|n| err.contains(n.as_str())), "{err}");
     assert!(!err.contains("variant constructor"), "{err}");
 }
+
+#[test]
+fn a_plot_file_other_than_svg_is_refused_before_simulating() {
+    let dir = std::env::temp_dir().join(format!("apportion-cli-{:016x}", rand::random::<u64>()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let png = dir.join("regret.png");
+    let out = apportion()
+        .args(["simulate", "--arms", "0.05,0.04", "--policies", "ucb1", "--horizon", "100", "--runs", "1", "--plot"])
+        .arg(&png)
+        .output()
+        .unwrap();
+    let written = png.exists();
+    let _ = std::fs::remove_dir_all(&dir);
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{err}");
+    assert!(err.contains("regret.png") && err.contains(".svg") && !written, "{err}");
+}
