@@ -266,3 +266,26 @@ fn a_plot_file_other_than_svg_is_refused_before_simulating() {
     assert_eq!(out.status.code(), Some(2), "{err}");
     assert!(err.contains("regret.png") && err.contains(".svg") && !written, "{err}");
 }
+
+#[test]
+fn the_demo_with_an_unreachable_broker_fails_with_one_message_naming_it() {
+    let address = format!("127.0.0.1:{}", closed_port());
+    let mut child = apportion()
+        .args(["demo", "--seconds", "30", "--brokers", &address])
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(60);
+    while child.try_wait().unwrap().is_none() && std::time::Instant::now() < deadline {
+        std::thread::sleep(std::time::Duration::from_millis(50));
+    }
+    let _ = child.kill();
+    let out = child.wait_with_output().unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    let said = format!("{}{err}", String::from_utf8_lossy(&out.stdout));
+    assert!(!out.status.success() && out.status.code().is_some(), "ended by itself with a failure: {said}");
+    assert!(err.contains(&address), "{said}");
+    assert!(!String::from_utf8_lossy(&out.stdout).contains("an in-process broker"), "{said}");
+    assert_eq!(err.lines().filter(|l| !l.trim().is_empty()).count(), 1, "one message: {said}");
+}

@@ -10,7 +10,11 @@ use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
+use rdkafka::config::RDKafkaLogLevel;
+use rdkafka::consumer::{BaseConsumer, Consumer, ConsumerContext};
+use rdkafka::error::KafkaError;
 use rdkafka::mocking::MockCluster;
+use rdkafka::ClientContext;
 
 use crate::config::Config;
 use crate::{say, sayln};
@@ -65,6 +69,9 @@ async fn demo(args: DemoArgs) -> anyhow::Result<()> {
     let mock = match &args.brokers {
         Some(b) => {
             cfg.kafka.brokers = b.clone();
+            let probe = crate::stream::client_config(&cfg);
+            let brokers = b.clone();
+            tokio::task::spawn_blocking(move || reachable(probe, &brokers)).await??;
             None
         }
         None => {
@@ -106,7 +113,11 @@ async fn demo(args: DemoArgs) -> anyhow::Result<()> {
         cfg.metrics.listen = "127.0.0.1:0".into();
     }
     let sidecar = tokio::spawn(crate::cli::serve_sidecar_with(cfg.clone(), served.clone(), shutdown.clone(), false));
-    sayln!("Simmer demo: an in-process broker, traffic at {} impressions/s, the sidecar (metrics on {}).", args.rate, cfg.metrics.listen)?;
+    let broker = match &args.brokers {
+        Some(b) => format!("the broker at {b}"),
+        None => "an in-process broker".into(),
+    };
+    sayln!("Simmer demo: {broker}, traffic at {} impressions/s, the sidecar (metrics on {}).", args.rate, cfg.metrics.listen)?;
     let live = std::io::stdout().is_terminal();
     let started = Instant::now();
     let mut last_print = Instant::now();
@@ -160,6 +171,34 @@ async fn demo(args: DemoArgs) -> anyhow::Result<()> {
     sayln!("{outcome}")?;
     drop(mock);
     Ok(())
+}
+
+/// How long the demo waits for a broker given with `--brokers` to answer.
+const PROBE_TIMEOUT: Duration = Duration::from_secs(5);
+
+/// Keeps librdkafka's own reports out of the log while probing: the probe's one message says
+/// what went wrong, where a retrying client would log every failed connection.
+struct Quiet;
+
+impl ClientContext for Quiet {
+    fn log(&self, _: RDKafkaLogLevel, _: &str, _: &str) {}
+    fn error(&self, _: KafkaError, _: &str) {}
+}
+
+impl ConsumerContext for Quiet {}
+
+/// Fails at once, naming the address, when the broker given with `--brokers` does not answer a
+/// metadata request: unlike `run`, which waits for its broker, the demo is run by hand.
+fn reachable(config: rdkafka::ClientConfig, brokers: &str) -> anyhow::Result<()> {
+    let client: BaseConsumer<Quiet> = config
+        .create_with_context(Quiet)
+        .map_err(|e| anyhow::anyhow!("cannot create a client for the broker at {brokers}: {e}"))?;
+    client.fetch_metadata(None, PROBE_TIMEOUT).map(|_| ()).map_err(|e| {
+        anyhow::anyhow!(
+            "no Kafka broker answered at {brokers} within {} s ({e}); start one there, or leave out --brokers to use the demo's in-process broker",
+            PROBE_TIMEOUT.as_secs()
+        )
+    })
 }
 
 async fn wait(shutdown: &Shutdown, deadline: Option<Instant>) {
