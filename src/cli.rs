@@ -9,12 +9,14 @@ use std::sync::Arc;
 use clap::{Parser, Subcommand};
 use indicatif::{ProgressBar, ProgressStyle};
 
-use crate::config::{self, Config, ConfigError, ResolvedExperiment};
+use crate::config::{self, Config, ConfigError, ResolvedExperiment, Source};
+use crate::console::{self, Unwritable};
 use crate::core::{PolicySpec, RewardModel};
 use crate::shutdown::Shutdown;
 use crate::telemetry::http::Served;
-use crate::telemetry::Metrics;
 use crate::sim::{self, SimSpec};
+use crate::telemetry::Metrics;
+use crate::{say, sayln};
 
 #[derive(Parser, Debug)]
 #[command(name = "apportion", version, about = "Allocates live traffic between experiment arms with bandit policies")]
@@ -73,7 +75,7 @@ pub struct SimulateArgs {
     /// Print one JSON object instead of the table.
     #[arg(long)]
     pub json: bool,
-    /// Also draw mean regret against t to this SVG file.
+    /// Also draw mean regret against t to this SVG file (other extensions are refused).
     #[arg(long, value_name = "FILE.svg")]
     pub plot: Option<PathBuf>,
 }
@@ -89,16 +91,21 @@ pub fn main() -> ExitCode {
     }
 }
 
-/// Loads the configuration named on the command line, or the default file when it exists.
-pub fn load_config(path: Option<PathBuf>) -> Result<Config, ConfigError> {
+/// Loads the configuration named on the command line, or the default file when it exists,
+/// and says which it was.
+pub fn load_config(path: Option<PathBuf>) -> Result<(Config, Source), ConfigError> {
     match path {
-        Some(p) => Config::load(&p, true),
-        None => Config::load(Path::new(config::DEFAULT_PATH), false),
+        Some(p) => Ok((Config::load(&p, true)?, Source::File(p))),
+        None => {
+            let default = Path::new(config::DEFAULT_PATH);
+            let source = if default.exists() { Source::File(default.to_path_buf()) } else { Source::BuiltIn };
+            Ok((Config::load(default, false)?, source))
+        }
     }
 }
 
 fn run(path: Option<PathBuf>) -> ExitCode {
-    let cfg = match load_config(path) {
+    let (cfg, source) = match load_config(path) {
         Ok(c) => c,
         Err(e) => {
             eprintln!("apportion run: {e}");
@@ -106,6 +113,15 @@ fn run(path: Option<PathBuf>) -> ExitCode {
         }
     };
     crate::telemetry::init_logging(&cfg.log.format, &cfg.log.level);
+    tracing::info!("{source}");
+    tracing::info!("defaults: {}", first_sight(&cfg));
+    let declared = cfg.resolved();
+    if declared.is_empty() {
+        tracing::info!("no declared experiments");
+    }
+    for r in declared {
+        tracing::info!("experiment {r}");
+    }
     for w in cfg.warnings() {
         tracing::warn!("{w}");
     }
@@ -148,43 +164,55 @@ pub async fn serve_sidecar_with(cfg: Config, served: Arc<Served>, shutdown: Shut
 }
 
 fn check(path: Option<PathBuf>) -> ExitCode {
-    let cfg = match load_config(path) {
+    let (cfg, source) = match load_config(path) {
         Ok(c) => c,
         Err(e) => {
             eprintln!("apportion check: {e}");
             return ExitCode::from(2);
         }
     };
-    println!("kafka: brokers {}, group {}", cfg.kafka.brokers, cfg.kafka.group_id);
-    println!(
+    match print_check(&cfg, &source) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => console::exit_code("check", &e),
+    }
+}
+
+fn print_check(cfg: &Config, source: &Source) -> Result<(), Unwritable> {
+    sayln!("{source}")?;
+    sayln!("kafka: brokers {}, group {}", cfg.kafka.brokers, cfg.kafka.group_id)?;
+    sayln!(
         "topics: input {}, weights {}, state {}, dead letters {}",
         cfg.kafka.input_topic, cfg.kafka.weights_topic, cfg.kafka.state_topic, cfg.kafka.dead_letter_topic
-    );
+    )?;
     for (k, v) in cfg.client_redacted() {
-        println!("client: {k} = {v}");
+        sayln!("client: {k} = {v}")?;
     }
-    println!(
+    sayln!(
         "publish every {}s (heartbeat {}s, min change {}), snapshot every {}s, metrics on {}",
         cfg.publish.interval_seconds,
         cfg.publish.heartbeat_seconds,
         cfg.publish.min_change,
         cfg.snapshot.interval_seconds,
         cfg.metrics.listen
-    );
-    match cfg.resolve_default_spec() {
-        Ok(spec) if cfg.defaults.auto_create => {
-            let d = ResolvedExperiment { id: "(created on first sight)".into(), arms: Vec::new(), spec };
-            println!("defaults: {d}");
-        }
-        _ => println!("defaults: experiments must be declared (auto_create is off)"),
-    }
+    )?;
+    sayln!("defaults: {}", first_sight(cfg))?;
     for r in cfg.resolved() {
-        println!("experiment {r}");
+        sayln!("experiment {r}")?;
     }
     for w in cfg.warnings() {
-        println!("warning: {w}");
+        sayln!("warning: {w}")?;
     }
-    ExitCode::SUCCESS
+    Ok(())
+}
+
+/// How experiments that were not declared are run.
+fn first_sight(cfg: &Config) -> String {
+    match cfg.resolve_default_spec() {
+        Ok(spec) if cfg.defaults.auto_create => {
+            ResolvedExperiment { id: "(created on first sight)".into(), arms: Vec::new(), spec }.to_string()
+        }
+        _ => "experiments must be declared (auto_create is off)".into(),
+    }
 }
 
 fn simulate(args: SimulateArgs) -> ExitCode {
@@ -198,7 +226,7 @@ fn simulate(args: SimulateArgs) -> ExitCode {
         seed: args.seed,
         threads: args.threads.unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get())),
     };
-    if let Err(e) = spec.validate() {
+    if let Err(e) = spec.validate().and_then(|()| args.plot.as_deref().map_or(Ok(()), sim::output::check_plot_path)) {
         eprintln!("apportion simulate: {e}");
         return ExitCode::from(2);
     }
@@ -222,25 +250,32 @@ fn simulate(args: SimulateArgs) -> ExitCode {
             return ExitCode::from(2);
         }
     };
-    if args.json {
-        match serde_json::to_string(&report) {
-            Ok(s) => println!("{s}"),
+    match print_simulation(&report, args.json, args.plot.as_deref()) {
+        Ok(code) => code,
+        Err(e) => console::exit_code("simulate", &e),
+    }
+}
+
+fn print_simulation(report: &sim::SimReport, json: bool, plot: Option<&Path>) -> Result<ExitCode, Unwritable> {
+    if json {
+        match serde_json::to_string(report) {
+            Ok(s) => sayln!("{s}")?,
             Err(e) => {
                 eprintln!("apportion simulate: cannot write JSON: {e}");
-                return ExitCode::FAILURE;
+                return Ok(ExitCode::FAILURE);
             }
         }
     } else {
-        print!("{}", sim::output::table(&report));
+        say!("{}", sim::output::table(report))?;
     }
-    if let Some(path) = args.plot {
-        if let Err(e) = sim::output::plot(&report, &path) {
+    if let Some(path) = plot {
+        if let Err(e) = sim::output::plot(report, path) {
             eprintln!("apportion simulate: {e}");
-            return ExitCode::FAILURE;
+            return Ok(ExitCode::FAILURE);
         }
-        if !args.json {
-            println!("plot written to {}", path.display());
+        if !json {
+            sayln!("plot written to {}", path.display())?;
         }
     }
-    ExitCode::SUCCESS
+    Ok(ExitCode::SUCCESS)
 }

@@ -6,7 +6,7 @@
 
 use std::collections::BTreeMap;
 use std::fmt;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
@@ -15,6 +15,33 @@ use crate::event::valid_name;
 
 /// Default location of the configuration file.
 pub const DEFAULT_PATH: &str = "config/apportion.toml";
+
+/// Where a configuration was read from; `check` prints it and `run` logs it at start, so that
+/// nobody has to guess which file (if any) is in force.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Source {
+    File(PathBuf),
+    /// No file was named and the default one does not exist.
+    BuiltIn,
+}
+
+impl fmt::Display for Source {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Source::File(p) => write!(f, "configuration: {}", p.display())?,
+            Source::BuiltIn => write!(f, "no configuration file ({DEFAULT_PATH} does not exist); using built-in defaults")?,
+        }
+        let mut overrides: Vec<String> = std::env::vars_os()
+            .filter_map(|(k, _)| k.into_string().ok())
+            .filter(|k| k.starts_with("APPORTION_"))
+            .collect();
+        overrides.sort();
+        if !overrides.is_empty() {
+            write!(f, "; overridden by {}", overrides.join(", "))?;
+        }
+        Ok(())
+    }
+}
 
 /// A configuration problem, for people: where, what, and what would be valid.
 #[derive(Debug, thiserror::Error)]
@@ -207,15 +234,23 @@ impl Config {
     /// Reads `path` (when it exists, or always when `required`) and the environment.
     pub fn load(path: &Path, required: bool) -> Result<Config, ConfigError> {
         let mut builder = config::Config::builder();
+        if path.is_dir() {
+            return Err(ConfigError(format!(
+                "configuration file {} is a directory; pass --config with a TOML file, e.g. {}",
+                path.display(),
+                path.join("apportion.toml").display()
+            )));
+        }
         if required && !path.exists() {
             return Err(ConfigError(format!(
                 "configuration file {} does not exist; pass --config FILE (an example is config/apportion.toml)",
                 path.display()
             )));
         }
-        if path.exists() {
-            builder = builder.add_source(config::File::from(path).format(config::FileFormat::Toml));
+        if !path.exists() {
+            return Self::finish(builder, "built-in defaults with the environment");
         }
+        builder = builder.add_source(config::File::from(path).format(config::FileFormat::Toml));
         Self::finish(builder, &path.display().to_string())
     }
 
@@ -234,8 +269,8 @@ impl Config {
                     .try_parsing(true),
             )
             .build()
-            .map_err(|e| ConfigError(format!("{name}: {e}")))?;
-        let mut cfg: Config = built.try_deserialize().map_err(|e| ConfigError(format!("{name}: {e}")))?;
+            .map_err(|e| ConfigError(format!("{name}: {}", dotted(e))))?;
+        let mut cfg: Config = built.try_deserialize().map_err(|e| ConfigError(format!("{name}: {}", dotted(e))))?;
         // librdkafka property names use dots and never underscores; an environment variable
         // cannot hold dots, so APPORTION_KAFKA__CLIENT__SASL_PASSWORD means sasl.password.
         cfg.kafka.client = std::mem::take(&mut cfg.kafka.client)
@@ -324,6 +359,7 @@ impl Config {
         if !["text", "json"].contains(&self.log.format.as_str()) {
             return Err(format!("log.format = {:?}; valid: text, json", self.log.format));
         }
+        crate::telemetry::log_filter(&self.log.level)?;
         let d = &self.defaults;
         if !d.guardrails.pinned.is_empty() {
             return Err("defaults.guardrails.pinned: experiments created on first sight have no declared arms to pin".into());
@@ -338,6 +374,20 @@ impl Config {
                 return Err(format!("experiments[{i}].id = {:?} is declared twice", e.id));
             }
             let r = self.resolve(e).map_err(|m| format!("experiments[{i}] ({}): {m}", e.id))?;
+            let mut declared = std::collections::HashSet::new();
+            if let Some(a) = e.arms.iter().find(|a| !declared.insert(a.as_str())) {
+                return Err(format!("experiments[{i}].arms ({}): arm {a:?} is declared twice; name each arm once", e.id));
+            }
+            if !r.arms.is_empty() {
+                let key = if e.policy.is_some() { format!("experiments[{i}].policy") } else { "defaults.policy".into() };
+                if let Some(a) = r.spec.policy.weights.keys().find(|a| !r.arms.contains(a)) {
+                    return Err(format!(
+                        "{key}.weights.{a} ({}): no arm {a:?} is declared; declared arms: {}",
+                        e.id,
+                        r.arms.join(", ")
+                    ));
+                }
+            }
             for a in &r.arms {
                 if !valid_name(a) {
                     return Err(format!("experiments[{i}] ({}).arms: {a:?}; 1–64 characters from [A-Za-z0-9._-]", e.id));
@@ -424,6 +474,32 @@ impl Config {
             .map(|(k, v)| (k.clone(), if is_secret(k) { "<redacted>".into() } else { v.clone() }))
             .collect()
     }
+}
+
+/// The error with its key written as people write it: the config crate joins an array index
+/// and the next key without a dot (`experiments[0]guardrails`).
+fn dotted(e: config::ConfigError) -> config::ConfigError {
+    let fix = |key: Option<String>| key.map(|k| dotted_key(&k));
+    match e {
+        config::ConfigError::Type { origin, unexpected, expected, key } => {
+            config::ConfigError::Type { origin, unexpected, expected, key: fix(key) }
+        }
+        config::ConfigError::At { error, origin, key } => config::ConfigError::At { error, origin, key: fix(key) },
+        other => other,
+    }
+}
+
+/// `experiments[0]guardrails` → `experiments[0].guardrails`; `a[0][1]` and `a[0].b` stay.
+fn dotted_key(key: &str) -> String {
+    let mut out = String::with_capacity(key.len() + 4);
+    let mut chars = key.chars().peekable();
+    while let Some(c) = chars.next() {
+        out.push(c);
+        if c == ']' && chars.peek().is_some_and(|n| *n != '[' && *n != '.') {
+            out.push('.');
+        }
+    }
+    out
 }
 
 /// Whether a librdkafka property holds a secret (passwords, keys, tokens, credentials).

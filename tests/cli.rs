@@ -55,6 +55,13 @@ fn each_configuration_error_exits_2_naming_the_key() {
         ("[[experiments]]\nid = \"bad id\"\n", "experiments[0].id"),
         ("[[experiments]]\nid = \"x\"\nreward = { kind = \"bounded\", max = 0 }\n", "max"),
         ("[kafka.client]\n\"group.id\" = \"other\"\n", "group.id"),
+        ("[log]\nlevel = \"loud\"\n", "log.level"),
+        ("[[experiments]]\nid = \"x\"\nguardrails = { flor = 0.1 }\n", "`experiments[0].guardrails`"),
+        ("[[experiments]]\nid = \"x\"\narms = [\"a\", \"a\"]\n", "experiments[0].arms"),
+        (
+            "[[experiments]]\nid = \"x\"\narms = [\"a\", \"b\"]\npolicy = { name = \"fixed\", weights = { a = 0.5, zz = 0.5 } }\n",
+            "experiments[0].policy.weights.zz",
+        ),
     ];
     for (text, key) in cases {
         let p = write_config("bad.toml", text);
@@ -65,6 +72,11 @@ fn each_configuration_error_exits_2_naming_the_key() {
     }
     let out = apportion().args(["check", "--config", "/nonexistent/apportion.toml"]).output().unwrap();
     assert_eq!(out.status.code(), Some(2));
+    let dir = std::env::temp_dir();
+    let out = apportion().args(["check", "--config"]).arg(&dir).output().unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{err}");
+    assert!(err.contains("is a directory") && !err.contains("not found"), "{err}");
     let out = apportion().args(["run", "--config", "/nonexistent/apportion.toml"]).output().unwrap();
     assert_eq!(out.status.code(), Some(2), "run refuses before starting anything");
 }
@@ -111,4 +123,169 @@ fn the_demo_ends_with_the_best_arm_of_each_experiment_holding_the_largest_weight
     assert!(out.status.success(), "{text}{}", String::from_utf8_lossy(&out.stderr));
     // The demo's own scenario (config/demo.toml, src/demo/scenario.rs) has three experiments.
     assert_eq!(text.matches("— found").count(), 3, "{text}");
+}
+
+/// Runs the command with stdout a pipe whose reading end is closed before anything is written.
+fn run_into_closed_pipe(args: &[&str]) -> std::process::Output {
+    let mut child = apportion()
+        .args(args)
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    drop(child.stdout.take());
+    child.wait_with_output().unwrap()
+}
+
+#[test]
+fn a_closed_stdout_ends_each_printing_command_quietly() {
+    let sim = ["simulate", "--arms", "0.05,0.04", "--policies", "ucb1", "--horizon", "200", "--runs", "2"];
+    let sim_json = [&sim[..], &["--json"]].concat();
+    let check = ["check", "--config", "config/apportion.toml"];
+    for args in [&sim[..], &sim_json[..], &check[..]] {
+        let out = run_into_closed_pipe(args);
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert_eq!(out.status.code(), Some(0), "{args:?}: {err}");
+        assert!(!err.contains("panicked") && !err.contains("Broken pipe"), "{args:?}: {err}");
+    }
+}
+
+/// A loopback port nothing listens on: bound, then closed.
+fn closed_port() -> u16 {
+    let l = std::net::TcpListener::bind("127.0.0.1:0").unwrap();
+    l.local_addr().unwrap().port()
+}
+
+/// What `run` logs on stderr (a pipe) until a line contains `until`, or a minute has passed;
+/// then the process is killed. The broker is unreachable, which `run` survives by retrying.
+fn startup_log(config_text: &str, until: &str) -> String {
+    use std::io::BufRead;
+    let p = write_config("run.toml", config_text);
+    let mut child = apportion()
+        .args(["run", "--config"])
+        .arg(p.path())
+        .env("APPORTION_KAFKA__BROKERS", format!("127.0.0.1:{}", closed_port()))
+        .env("APPORTION_METRICS__LISTEN", "127.0.0.1:0")
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    let stderr = child.stderr.take().unwrap();
+    let (tx, rx) = std::sync::mpsc::channel();
+    std::thread::spawn(move || {
+        for line in std::io::BufReader::new(stderr).lines().map_while(Result::ok) {
+            if tx.send(line).is_err() {
+                break;
+            }
+        }
+    });
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(60);
+    let mut text = String::new();
+    while let Some(left) = deadline.checked_duration_since(std::time::Instant::now()) {
+        match rx.recv_timeout(left) {
+            Ok(line) => {
+                text.push_str(&line);
+                text.push('\n');
+                if line.contains(until) {
+                    break;
+                }
+            }
+            Err(_) => break,
+        }
+    }
+    let _ = child.kill();
+    let _ = child.wait();
+    text
+}
+
+#[test]
+fn a_log_level_that_is_no_filter_exits_2_naming_key_value_and_the_valid_levels() {
+    let p = write_config("loud.toml", "[log]\nlevel = \"loud\"\n");
+    for cmd in ["check", "run"] {
+        let out = apportion().args([cmd, "--config"]).arg(p.path()).output().unwrap();
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert_eq!(out.status.code(), Some(2), "{cmd}: {err}");
+        assert!(err.contains("log.level") && err.contains("\"loud\"") && err.contains("debug, info, warn"), "{cmd}: {err}");
+    }
+}
+
+#[test]
+fn text_logs_into_a_pipe_carry_no_colour_codes() {
+    let log = startup_log("[log]\nlevel = \"info\"\n", "metrics on");
+    assert!(log.contains("metrics on"), "{log}");
+    assert!(!log.contains('\u{1b}'), "{log:?}");
+}
+
+#[test]
+fn check_says_which_configuration_file_it_read_or_that_it_used_the_defaults() {
+    let out = apportion().args(["check", "--config", "config/apportion.toml"]).output().unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success() && text.contains("configuration: config/apportion.toml"), "{text}");
+    let empty = std::env::temp_dir().join(format!("apportion-cli-{:016x}", rand::random::<u64>()));
+    std::fs::create_dir_all(&empty).unwrap();
+    let out = apportion().arg("check").current_dir(&empty).output().unwrap();
+    let _ = std::fs::remove_dir_all(&empty);
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success() && text.contains("no configuration file") && text.contains("built-in defaults"), "{text}");
+}
+
+#[test]
+fn run_logs_its_configuration_file_and_the_declared_experiments_at_start() {
+    let log = startup_log(
+        "[[experiments]]\nid = \"hero\"\narms = [\"a\", \"b\"]\n\n[[experiments]]\nid = \"ranker\"\narms = [\"x\", \"y\"]\n",
+        "metrics on",
+    );
+    assert!(log.contains("configuration: ") && log.contains("run.toml"), "{log}");
+    assert!(log.contains("experiment hero") && log.contains("experiment ranker"), "{log}");
+}
+
+#[test]
+fn an_unknown_policy_name_lists_the_valid_names() {
+    let p = write_config("softmax.toml", "[[experiments]]\nid = \"x\"\npolicy = { name = \"softmax\" }\n");
+    let out = apportion().args(["check", "--config"]).arg(p.path()).output().unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{err}");
+    assert!(err.contains("\"softmax\"") && err.contains("experiments[0].policy.name"), "{err}");
+    assert!(apportion::core::PolicyName::ALL.iter().all(|n| err.contains(n.as_str())), "{err}");
+    assert!(!err.contains("variant constructor"), "{err}");
+}
+
+#[test]
+fn a_plot_file_other_than_svg_is_refused_before_simulating() {
+    let dir = std::env::temp_dir().join(format!("apportion-cli-{:016x}", rand::random::<u64>()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let png = dir.join("regret.png");
+    let out = apportion()
+        .args(["simulate", "--arms", "0.05,0.04", "--policies", "ucb1", "--horizon", "100", "--runs", "1", "--plot"])
+        .arg(&png)
+        .output()
+        .unwrap();
+    let written = png.exists();
+    let _ = std::fs::remove_dir_all(&dir);
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{err}");
+    assert!(err.contains("regret.png") && err.contains(".svg") && !written, "{err}");
+}
+
+#[test]
+fn the_demo_with_an_unreachable_broker_fails_with_one_message_naming_it() {
+    let address = format!("127.0.0.1:{}", closed_port());
+    let mut child = apportion()
+        .args(["demo", "--seconds", "30", "--brokers", &address])
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(60);
+    while child.try_wait().unwrap().is_none() && std::time::Instant::now() < deadline {
+        std::thread::sleep(std::time::Duration::from_millis(50));
+    }
+    let _ = child.kill();
+    let out = child.wait_with_output().unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    let said = format!("{}{err}", String::from_utf8_lossy(&out.stdout));
+    assert!(!out.status.success() && out.status.code().is_some(), "ended by itself with a failure: {said}");
+    assert!(err.contains(&address), "{said}");
+    assert!(!String::from_utf8_lossy(&out.stdout).contains("an in-process broker"), "{said}");
+    assert_eq!(err.lines().filter(|l| !l.trim().is_empty()).count(), 1, "one message: {said}");
 }

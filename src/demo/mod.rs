@@ -10,9 +10,14 @@ use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
+use rdkafka::config::RDKafkaLogLevel;
+use rdkafka::consumer::{BaseConsumer, Consumer, ConsumerContext};
+use rdkafka::error::KafkaError;
 use rdkafka::mocking::MockCluster;
+use rdkafka::ClientContext;
 
 use crate::config::Config;
+use crate::{say, sayln};
 use crate::shutdown::Shutdown;
 use crate::telemetry::http::Served;
 use crate::telemetry::Metrics;
@@ -50,6 +55,7 @@ pub fn main(args: DemoArgs) -> ExitCode {
     };
     match runtime.block_on(demo(args)) {
         Ok(()) => ExitCode::SUCCESS,
+        Err(e) if crate::console::is_closed(&e) => ExitCode::SUCCESS,
         Err(e) => {
             eprintln!("apportion demo: {e:#}");
             ExitCode::FAILURE
@@ -63,6 +69,9 @@ async fn demo(args: DemoArgs) -> anyhow::Result<()> {
     let mock = match &args.brokers {
         Some(b) => {
             cfg.kafka.brokers = b.clone();
+            let probe = crate::stream::client_config(&cfg);
+            let brokers = b.clone();
+            tokio::task::spawn_blocking(move || reachable(probe, &brokers)).await??;
             None
         }
         None => {
@@ -91,11 +100,11 @@ async fn demo(args: DemoArgs) -> anyhow::Result<()> {
     let deadline = args.seconds.map(|s| Instant::now() + Duration::from_secs(s));
 
     if args.generator_only {
-        println!("generating {} impressions/s for Simmer into {} on {}", args.rate, cfg.kafka.input_topic, cfg.kafka.brokers);
+        sayln!("generating {} impressions/s for Simmer into {} on {}", args.rate, cfg.kafka.input_topic, cfg.kafka.brokers)?;
         wait(&shutdown, deadline).await;
         stop.store(true, Ordering::SeqCst);
         generator.join().map_err(|_| anyhow::anyhow!("the traffic generator panicked"))??;
-        println!("{} events produced", produced.load(Ordering::Relaxed));
+        sayln!("{} events produced", produced.load(Ordering::Relaxed))?;
         return Ok(());
     }
 
@@ -104,13 +113,19 @@ async fn demo(args: DemoArgs) -> anyhow::Result<()> {
         cfg.metrics.listen = "127.0.0.1:0".into();
     }
     let sidecar = tokio::spawn(crate::cli::serve_sidecar_with(cfg.clone(), served.clone(), shutdown.clone(), false));
-    println!("Simmer demo: an in-process broker, traffic at {} impressions/s, the sidecar (metrics on {}).", args.rate, cfg.metrics.listen);
+    let broker = match &args.brokers {
+        Some(b) => format!("the broker at {b}"),
+        None => "an in-process broker".into(),
+    };
+    sayln!("Simmer demo: {broker}, traffic at {} impressions/s, the sidecar (metrics on {}).", args.rate, cfg.metrics.listen)?;
     let live = std::io::stdout().is_terminal();
     let started = Instant::now();
     let mut last_print = Instant::now();
     // The figures as last seen while the sidecar held its experiments: Ctrl-C stops the sidecar
     // at once, and it hands its experiments back as it stops.
     let mut last_seen: Option<(String, String)> = None;
+    // A closed stdout stops the demo like Ctrl-C does, and ends it quietly.
+    let mut unprintable = None;
     let holds_experiments = |served: &Served| served.table.read().map(|t| !t.rows.is_empty()).unwrap_or(false);
     loop {
         tokio::select! {
@@ -123,11 +138,17 @@ async fn demo(args: DemoArgs) -> anyhow::Result<()> {
         if holds_experiments(&served) {
             last_seen = Some((render(&served, started.elapsed(), produced.load(Ordering::Relaxed)), summary(&served)));
         }
-        if live {
-            print!("\x1b[2J\x1b[H{}", render(&served, started.elapsed(), produced.load(Ordering::Relaxed)));
+        let printed = if live {
+            say!("\x1b[2J\x1b[H{}", render(&served, started.elapsed(), produced.load(Ordering::Relaxed)))
         } else if last_print.elapsed() >= Duration::from_secs(5) {
             last_print = Instant::now();
-            println!("{:>4}s  {} events produced", started.elapsed().as_secs(), produced.load(Ordering::Relaxed));
+            sayln!("{:>4}s  {} events produced", started.elapsed().as_secs(), produced.load(Ordering::Relaxed))
+        } else {
+            Ok(())
+        };
+        if let Err(e) = printed {
+            unprintable = Some(e);
+            break;
         }
     }
     stop.store(true, Ordering::SeqCst);
@@ -143,10 +164,41 @@ async fn demo(args: DemoArgs) -> anyhow::Result<()> {
     };
     shutdown.trigger();
     sidecar.await??;
-    println!("{table}");
-    println!("{outcome}");
+    if let Some(e) = unprintable {
+        return Err(e.into());
+    }
+    sayln!("{table}")?;
+    sayln!("{outcome}")?;
     drop(mock);
     Ok(())
+}
+
+/// How long the demo waits for a broker given with `--brokers` to answer.
+const PROBE_TIMEOUT: Duration = Duration::from_secs(5);
+
+/// Keeps librdkafka's own reports out of the log while probing: the probe's one message says
+/// what went wrong, where a retrying client would log every failed connection.
+struct Quiet;
+
+impl ClientContext for Quiet {
+    fn log(&self, _: RDKafkaLogLevel, _: &str, _: &str) {}
+    fn error(&self, _: KafkaError, _: &str) {}
+}
+
+impl ConsumerContext for Quiet {}
+
+/// Fails at once, naming the address, when the broker given with `--brokers` does not answer a
+/// metadata request: unlike `run`, which waits for its broker, the demo is run by hand.
+fn reachable(config: rdkafka::ClientConfig, brokers: &str) -> anyhow::Result<()> {
+    let client: BaseConsumer<Quiet> = config
+        .create_with_context(Quiet)
+        .map_err(|e| anyhow::anyhow!("cannot create a client for the broker at {brokers}: {e}"))?;
+    client.fetch_metadata(None, PROBE_TIMEOUT).map(|_| ()).map_err(|e| {
+        anyhow::anyhow!(
+            "no Kafka broker answered at {brokers} within {} s ({e}); start one there, or leave out --brokers to use the demo's in-process broker",
+            PROBE_TIMEOUT.as_secs()
+        )
+    })
 }
 
 async fn wait(shutdown: &Shutdown, deadline: Option<Instant>) {

@@ -17,11 +17,15 @@ use rand_distr::{Beta, Distribution};
 use serde::Serialize;
 
 use crate::core::kl::bernoulli_kl;
-use crate::core::{Experiment, ExperimentSpec, Observation, PolicySpec, RewardModel};
+use crate::core::{Experiment, ExperimentSpec, Observation, PolicyName, PolicySpec, RewardModel};
 
 /// Concentration κ of the Beta law that bounded arms draw rewards from:
 /// reward = max · X, X ~ Beta(κ·p, κ·(1 − p)), p = mean / max.
 pub const BOUNDED_CONCENTRATION: f64 = 2.0;
+
+/// Log-spaced points per plotted curve; a curve through the checkpoints alone (one per power of
+/// ten) would be four or five straight segments.
+pub const CURVE_POINTS: usize = 100;
 
 /// What to simulate.
 #[derive(Clone, Debug)]
@@ -50,7 +54,7 @@ impl SimSpec {
             return Err(format!("--arms value {m} is outside the reward range [0, {max}]"));
         }
         if self.policies.is_empty() {
-            return Err("--policies is empty; name at least one of ucb1, epsilon-greedy, thompson, kl-ucb, fixed".into());
+            return Err(format!("--policies is empty; name at least one of {}", PolicyName::valid_names()));
         }
         for (flag, v) in [("--horizon", self.horizon), ("--runs", self.runs as u64), ("--batch", self.batch)] {
             if v == 0 {
@@ -67,6 +71,7 @@ impl SimSpec {
     /// Σⱼ Δⱼ / kl(μⱼ, μ*) over the suboptimal arms (Lai & Robbins 1985, "Asymptotically efficient
     /// adaptive allocation rules", Adv. Appl. Math. 6): regret grows at least like this times ln n
     /// for any consistent policy on Bernoulli arms. Bounded arms use their means scaled to [0, 1].
+    /// Folded from +0, since an empty `sum` of floats is −0 (printed `-0.000` for equal arms).
     pub fn lai_robbins_constant(&self) -> f64 {
         let max = self.reward.max();
         let best = self.best();
@@ -74,7 +79,21 @@ impl SimSpec {
             .iter()
             .filter(|&&m| m < best)
             .map(|&m| (best - m) / bernoulli_kl(m / max, best / max))
-            .sum()
+            .fold(0.0, |sum, c| sum + c)
+    }
+
+    /// Points of the plotted curves: about [`CURVE_POINTS`] log-spaced from 1 to the horizon,
+    /// and every checkpoint, so that a curve is smooth and passes through the table's figures.
+    pub fn curve_points(&self) -> Vec<u64> {
+        let last = CURVE_POINTS.saturating_sub(1).max(1) as f64;
+        let h = self.horizon as f64;
+        let mut ts: Vec<u64> = (0..CURVE_POINTS)
+            .map(|i| h.powf(i as f64 / last).round().clamp(1.0, h) as u64)
+            .chain(self.checkpoints())
+            .collect();
+        ts.sort_unstable();
+        ts.dedup();
+        ts
     }
 
     /// Every power of ten up to the horizon, and the horizon.
@@ -100,6 +119,9 @@ pub struct Checkpoint {
 pub struct PolicyResult {
     pub policy: String,
     pub checkpoints: Vec<Checkpoint>,
+    /// Mean regret at [`SimSpec::curve_points`], for the plot. Not part of the JSON shape.
+    #[serde(skip)]
+    pub curve: Vec<Checkpoint>,
     pub final_regret_mean: f64,
     pub final_regret_stderr: f64,
     /// Mean over runs of the sidecar's regret estimate at the horizon, to compare with the true
@@ -135,6 +157,7 @@ pub fn simulate(spec: &SimSpec, progress: &(dyn Fn(u64) + Sync)) -> Result<SimRe
         p.build()?;
     }
     let cps = spec.checkpoints();
+    let points = spec.curve_points();
     let runs = spec.runs as usize;
     let jobs = spec.policies.len() * runs;
     let next = AtomicUsize::new(0);
@@ -150,7 +173,7 @@ pub fn simulate(spec: &SimSpec, progress: &(dyn Fn(u64) + Sync)) -> Result<SimRe
                     break;
                 }
                 let (p, r) = (job / runs, job % runs);
-                match one_run(spec, &spec.policies[p], &cps, run_seed(spec.seed, r as u64)) {
+                match one_run(spec, &spec.policies[p], &points, run_seed(spec.seed, r as u64)) {
                     Ok(out) => {
                         if let Ok(mut slots) = slots.lock() {
                             slots[job] = Some(out);
@@ -173,7 +196,7 @@ pub fn simulate(spec: &SimSpec, progress: &(dyn Fn(u64) + Sync)) -> Result<SimRe
     let mut results = Vec::with_capacity(spec.policies.len());
     for (p, policy) in spec.policies.iter().enumerate() {
         let outs: Vec<&RunOutcome> = slots[p * runs..(p + 1) * runs].iter().flatten().collect();
-        let checkpoints: Vec<Checkpoint> = cps
+        let curve: Vec<Checkpoint> = points
             .iter()
             .enumerate()
             .map(|(i, &t)| {
@@ -181,6 +204,7 @@ pub fn simulate(spec: &SimSpec, progress: &(dyn Fn(u64) + Sync)) -> Result<SimRe
                 Checkpoint { t, regret_mean: mean, regret_stderr: stderr }
             })
             .collect();
+        let checkpoints: Vec<Checkpoint> = curve.iter().filter(|c| cps.contains(&c.t)).cloned().collect();
         let last = checkpoints.last().cloned().unwrap_or(Checkpoint { t: 0, regret_mean: 0.0, regret_stderr: 0.0 });
         let mean_pulls = (0..spec.arms.len())
             .map(|j| outs.iter().map(|o| o.pulls[j] as f64).sum::<f64>() / outs.len().max(1) as f64)
@@ -188,6 +212,7 @@ pub fn simulate(spec: &SimSpec, progress: &(dyn Fn(u64) + Sync)) -> Result<SimRe
         results.push(PolicyResult {
             policy: policy.to_string(),
             checkpoints,
+            curve,
             final_regret_mean: last.regret_mean,
             final_regret_stderr: last.regret_stderr,
             final_estimate_mean: mean_stderr(outs.iter().map(|o| o.estimate)).0,

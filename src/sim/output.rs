@@ -1,4 +1,7 @@
 //! How simulation results are shown: a plain table, JSON, or an SVG plot.
+//!
+//! Only SVG is drawn: plotters' bitmap backend needs a font library (FreeType and fontconfig) to
+//! put text into pixels, which this build does without; an SVG converts to PNG with any viewer.
 
 use std::fmt::Write as _;
 use std::path::Path;
@@ -22,7 +25,7 @@ pub fn table(report: &SimReport) -> String {
     let c = report.lai_robbins_constant;
     let _ = writeln!(
         s,
-        "Lai–Robbins constant C = {c:.3}; C·ln n at the horizon = {:.1}\n",
+        "Lai–Robbins constant C = {c:.3}; asymptotic rate C·ln n at the horizon = {:.1} (finite horizons usually lie below it)\n",
         c * (report.horizon as f64).ln()
     );
     let width = report.results.iter().map(|r| r.policy.len()).max().unwrap_or(6).max(6);
@@ -43,9 +46,41 @@ pub fn table(report: &SimReport) -> String {
     s
 }
 
-/// Mean regret against t on a log axis, one line per policy with its standard error shaded,
-/// and the Lai–Robbins line C·ln t.
+/// Refuses a plot file that would not be SVG, before anything is simulated.
+pub fn check_plot_path(path: &Path) -> Result<(), String> {
+    match path.extension().and_then(|e| e.to_str()) {
+        Some(e) if e.eq_ignore_ascii_case("svg") => Ok(()),
+        _ => Err(format!(
+            "--plot {}: only SVG is drawn; give a file name ending in .svg (any SVG viewer converts it to PNG)",
+            path.display()
+        )),
+    }
+}
+
+/// A tick label as people write counts: 10, 100, 1 000, 20 000 (not 1.0, 10.0).
+fn tick(v: &f64) -> String {
+    if v.fract().abs() > 1e-9 {
+        return format!("{}", (v * 100.0).round() / 100.0);
+    }
+    let digits = format!("{}", v.abs().round() as u64);
+    let mut grouped = String::new();
+    for (i, d) in digits.chars().enumerate() {
+        if i > 0 && (digits.len() - i) % 3 == 0 {
+            grouped.push(' ');
+        }
+        grouped.push(d);
+    }
+    if *v < 0.0 {
+        grouped.insert(0, '−');
+    }
+    grouped
+}
+
+/// Mean regret against t on a log axis, one line per policy (through its dense curve points)
+/// with its standard error shaded, and the Lai–Robbins rate C·ln t, which policies reach only
+/// asymptotically: at finite horizons they usually lie below it.
 pub fn plot(report: &SimReport, path: &Path) -> Result<(), String> {
+    check_plot_path(path)?;
     let fail = |e: &dyn std::fmt::Display| format!("cannot draw {}: {e}", path.display());
     let root = SVGBackend::new(path, (900, 560)).into_drawing_area();
     root.fill(&WHITE).map_err(|e| fail(&e))?;
@@ -54,7 +89,7 @@ pub fn plot(report: &SimReport, path: &Path) -> Result<(), String> {
     let top = report
         .results
         .iter()
-        .flat_map(|r| r.checkpoints.iter().map(|p| p.regret_mean + p.regret_stderr))
+        .flat_map(|r| r.curve.iter().map(|p| p.regret_mean + p.regret_stderr))
         .fold(c * horizon.ln(), f64::max)
         .max(1.0)
         * 1.08;
@@ -69,12 +104,14 @@ pub fn plot(report: &SimReport, path: &Path) -> Result<(), String> {
         .configure_mesh()
         .x_desc("pulls t (log scale)")
         .y_desc("regret")
+        .x_label_formatter(&tick)
+        .y_label_formatter(&tick)
         .draw()
         .map_err(|e| fail(&e))?;
     for (i, r) in report.results.iter().enumerate() {
         let colour = Palette99::pick(i).to_rgba();
         let mut pts: Vec<(f64, f64, f64)> = vec![(1.0, 0.0, 0.0)];
-        pts.extend(r.checkpoints.iter().map(|p| (p.t as f64, p.regret_mean, p.regret_stderr)));
+        pts.extend(r.curve.iter().filter(|p| p.t > 1).map(|p| (p.t as f64, p.regret_mean, p.regret_stderr)));
         let band: Vec<(f64, f64)> = pts
             .iter()
             .map(|&(t, m, e)| (t, m + e))
@@ -97,7 +134,7 @@ pub fn plot(report: &SimReport, path: &Path) -> Result<(), String> {
     chart
         .draw_series(DashedLineSeries::new(lr, 6, 4, BLACK.stroke_width(1)))
         .map_err(|e| fail(&e))?
-        .label(format!("Lai–Robbins C·ln t, C = {c:.2}"))
+        .label(format!("Lai–Robbins asymptotic rate C·ln t, C = {c:.2}"))
         .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLACK));
     chart
         .configure_series_labels()
@@ -108,4 +145,84 @@ pub fn plot(report: &SimReport, path: &Path) -> Result<(), String> {
         .map_err(|e| fail(&e))?;
     root.present().map_err(|e| fail(&e))?;
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::core::RewardModel;
+    use crate::sim::{simulate, SimSpec};
+
+    fn report(arms: &[f64], horizon: u64) -> SimReport {
+        let spec = SimSpec {
+            arms: arms.to_vec(),
+            reward: RewardModel::Bernoulli,
+            policies: vec!["ucb1".parse().unwrap()],
+            horizon,
+            runs: 2,
+            batch: 1,
+            seed: 3,
+            threads: 1,
+        };
+        simulate(&spec, &|_| {}).unwrap()
+    }
+
+    #[test]
+    fn ticks_read_as_counts_grouped_by_thousands() {
+        // Expected strings: common practice, no source.
+        assert_eq!(tick(&10.0), "10");
+        assert_eq!(tick(&1000.0), "1 000");
+        assert_eq!(tick(&20_000.0), "20 000");
+        assert_eq!(tick(&1_000_000.0), "1 000 000");
+        assert_eq!(tick(&0.0), "0");
+        assert_eq!(tick(&2.5), "2.5");
+    }
+
+    #[test]
+    fn the_plot_draws_each_curve_through_dense_points_with_readable_ticks() {
+        let r = report(&[0.05, 0.04], 2000);
+        let path = std::env::temp_dir().join(format!("apportion-plot-{:016x}.svg", rand::random::<u64>()));
+        plot(&r, &path).unwrap();
+        let svg = std::fs::read_to_string(&path).unwrap();
+        let _ = std::fs::remove_file(&path);
+        let most_points = svg
+            .split("<polyline")
+            .skip(1)
+            .filter_map(|el| el.split("points=\"").nth(1)?.split('"').next().map(|p| p.split_whitespace().count()))
+            .max()
+            .unwrap_or(0);
+        assert!(most_points >= 50, "longest line has {most_points} points");
+        let texts: Vec<&str> = svg
+            .split("<text")
+            .skip(1)
+            .filter_map(|el| el.split_once('>')?.1.split("</text>").next().map(str::trim))
+            .collect();
+        assert!(texts.contains(&"1 000") && !texts.contains(&"10.0") && !texts.contains(&"1.0"), "{texts:?}");
+        assert!(texts.iter().any(|t| t.starts_with("Lai–Robbins asymptotic rate")), "{texts:?}");
+    }
+
+    #[test]
+    fn the_json_checkpoints_stay_at_powers_of_ten_and_the_horizon() {
+        let r = report(&[0.05, 0.04], 2000);
+        let ts: Vec<u64> = r.results[0].checkpoints.iter().map(|c| c.t).collect();
+        assert_eq!(ts, [10, 100, 1000, 2000]);
+    }
+
+    #[test]
+    fn equal_arms_print_a_constant_of_zero_not_minus_zero() {
+        let r = report(&[0.05, 0.05], 100);
+        assert!(r.lai_robbins_constant == 0.0 && r.lai_robbins_constant.is_sign_positive());
+        let t = table(&r);
+        assert!(t.contains("C = 0.000") && !t.contains("-0.0"), "{t}");
+    }
+
+    #[test]
+    fn a_plot_file_not_ending_in_svg_is_refused() {
+        assert!(check_plot_path(Path::new("regret.svg")).is_ok());
+        assert!(check_plot_path(Path::new("REGRET.SVG")).is_ok());
+        for bad in ["regret.png", "regret", "regret.svg.png"] {
+            let e = check_plot_path(Path::new(bad)).unwrap_err();
+            assert!(e.contains(bad) && e.contains(".svg"), "{e}");
+        }
+    }
 }

@@ -3,7 +3,10 @@
 pub mod http;
 pub mod table;
 
+use std::io::IsTerminal;
+
 use prometheus::{GaugeVec, Histogram, HistogramOpts, IntCounterVec, IntGauge, IntGaugeVec, Opts, Registry};
+use tracing_subscriber::EnvFilter;
 
 /// The instance-wide metrics of the contract, registered once and shared by the pipeline and
 /// the HTTP side. Per-experiment and per-arm series are not here: they are rendered from
@@ -68,9 +71,60 @@ impl Metrics {
     }
 }
 
-/// Starts logging: text by default, JSON on request; `level` is a tracing filter.
+/// Levels a `log.level` directive may end in.
+const LEVELS: [&str; 6] = ["trace", "debug", "info", "warn", "error", "off"];
+
+/// Parses `log.level`, a tracing filter such as `info` or `info,rdkafka=warn`.
+///
+/// tracing reads a bare word as a target to log at every level, so a typo (`loud`) would be
+/// accepted and silence everything else; here a directive without `=` must be a level, and one
+/// with `=` must end in a level. The message says what would be valid.
+pub fn log_filter(level: &str) -> Result<EnvFilter, String> {
+    let valid = format!(
+        "valid: a level ({}), or target=level directives separated by commas, e.g. \"info,rdkafka=warn\"",
+        LEVELS.join(", ")
+    );
+    if level.trim().is_empty() {
+        return Err(format!("log.level is empty; {valid}"));
+    }
+    for directive in level.split(',').map(str::trim).filter(|d| !d.is_empty()) {
+        let tail = directive.rsplit_once('=').map_or(directive, |(_, l)| l);
+        if !LEVELS.iter().any(|l| l.eq_ignore_ascii_case(tail.trim())) {
+            let place = if directive == level.trim() { String::new() } else { format!(" in {directive:?}") };
+            return Err(format!("log.level = {level:?}: {tail:?}{place} is not a level; {valid}"));
+        }
+    }
+    EnvFilter::builder().parse(level).map_err(|e| format!("log.level = {level:?}: {e}; {valid}"))
+}
+
+/// Starts logging on stderr: text by default, JSON on request; `level` has passed
+/// [`log_filter`] when the configuration was loaded. Colours only on a terminal: a log file or
+/// a collector would get the escape codes as text.
 pub fn init_logging(format: &str, level: &str) {
-    let filter = tracing_subscriber::EnvFilter::try_new(level).unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
-    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    let filter = log_filter(level).unwrap_or_else(|_| EnvFilter::new("info"));
+    let builder = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr)
+        .with_ansi(std::io::stderr().is_terminal());
     let _ = if format == "json" { builder.json().try_init() } else { builder.try_init() };
+}
+
+#[cfg(test)]
+mod tests {
+    use super::log_filter;
+
+    #[test]
+    fn a_level_or_target_level_directives_are_accepted() {
+        for ok in ["info", "WARN", "apportion=debug", "info,rdkafka=warn", "off"] {
+            assert!(log_filter(ok).is_ok(), "{ok}");
+        }
+    }
+
+    #[test]
+    fn a_word_that_is_no_level_is_refused_naming_the_valid_ones() {
+        for bad in ["loud", "apportion", "info,rdkafka=noisy", "", "  "] {
+            let e = log_filter(bad).unwrap_err();
+            assert!(e.contains("log.level") && e.contains("trace, debug, info, warn, error, off"), "{bad}: {e}");
+        }
+    }
 }

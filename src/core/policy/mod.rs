@@ -59,9 +59,10 @@ pub trait Policy: Send + Sync + fmt::Debug {
     fn choose(&self, arms: &[ArmInput], rng: &mut dyn RngCore) -> usize;
 }
 
-/// The policies that can be configured.
+/// The policies that can be configured. Read through [`FromStr`], so that an unknown name in a
+/// file gets the same message, listing the valid names, as one on the command line.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
-#[serde(rename_all = "kebab-case")]
+#[serde(rename_all = "kebab-case", try_from = "String")]
 pub enum PolicyName {
     Ucb1,
     EpsilonGreedy,
@@ -91,12 +92,27 @@ impl fmt::Display for PolicyName {
     }
 }
 
+impl PolicyName {
+    /// Every name, comma-separated, for messages.
+    pub fn valid_names() -> String {
+        PolicyName::ALL.map(PolicyName::as_str).join(", ")
+    }
+}
+
 impl FromStr for PolicyName {
     type Err = String;
     fn from_str(s: &str) -> Result<Self, String> {
-        PolicyName::ALL.into_iter().find(|p| p.as_str() == s).ok_or_else(|| {
-            format!("unknown policy {s:?}; valid: ucb1, epsilon-greedy, thompson, kl-ucb, fixed")
-        })
+        PolicyName::ALL
+            .into_iter()
+            .find(|p| p.as_str() == s)
+            .ok_or_else(|| format!("unknown policy {s:?}; valid: {}", PolicyName::valid_names()))
+    }
+}
+
+impl TryFrom<String> for PolicyName {
+    type Error = String;
+    fn try_from(s: String) -> Result<Self, String> {
+        s.parse()
     }
 }
 
