@@ -33,7 +33,8 @@ fn workload(events: usize, experiments: usize, seed: u64) -> (Vec<(String, Vec<u
     for i in 0..events {
         let exp = format!("exp-{}", rng.gen_range(0..experiments));
         let arm = format!("arm-{}", rng.gen_range(0..4));
-        let reward = rng.gen::<f64>() < 0.2;
+        // A reward only for an arm already shown: one for an arm never shown is refused.
+        let reward = rng.gen::<f64>() < 0.2 && want.get(&(exp.clone(), arm.clone())).is_some_and(|w| w.0 > 0);
         let kind = if reward { r#""kind":"reward","reward":1"# } else { r#""kind":"impression""# };
         let body = format!(r#"{{"event_id":"e{i}",{kind},"experiment":"{exp}","arm":"{arm}","ts_ms":{}}}"#, t0 + i as i64);
         let w = want.entry((exp.clone(), arm)).or_default();
@@ -121,7 +122,12 @@ fn crashes_at_random_moments_lose_nothing_and_count_nothing_twice() {
     let _one = exclusive();
     let brokers = brokers();
     let cfg = ProcConfig::new("crash", &brokers, 4);
-    let (messages, want) = workload(200_000, 8, 42);
+    let (mut messages, want) = workload(200_000, 8, 42);
+    // Every 2 000th message is not JSON: dead letters are written at least once each.
+    let bad = messages.len() / 2_000;
+    for i in 0..bad {
+        messages.insert((i * 2_001 + 1_000).min(messages.len()), ("exp-0".to_string(), format!("not json {i}").into_bytes()));
+    }
     let produced = messages.len();
     let mut sidecar = SidecarProcess::start(&cfg, cfg.port);
     assert!(sidecar.wait_ready(Duration::from_secs(60)), "first start");
@@ -162,6 +168,24 @@ fn crashes_at_random_moments_lose_nothing_and_count_nothing_twice() {
     assert_eq!(applied as u64, distinct, "applied events counted once, across restarts");
     assert!(sidecar.stop(), "clean shutdown");
     assert_versions_increase(&cfg.topic("weights"), 8);
+    assert_dead_letters_at_least_once(&cfg.topic("dead-letter"), bad);
+}
+
+/// Each refused event has at least one dead letter (nothing lost); a crash can repeat some,
+/// and the `apportion-source` header (`topic/partition/offset`) tells the repeats apart.
+fn assert_dead_letters_at_least_once(topic: &str, refused: usize) {
+    use rdkafka::message::Headers;
+    let msgs = read_topic(topic, Duration::from_secs(20), |_| false);
+    let mut by_source: BTreeMap<String, usize> = BTreeMap::new();
+    for m in &msgs {
+        let source = m
+            .headers()
+            .and_then(|h| h.iter().find(|h| h.key == "apportion-source").and_then(|h| h.value).map(|v| String::from_utf8_lossy(v).to_string()))
+            .unwrap_or_default();
+        *by_source.entry(source).or_default() += 1;
+    }
+    eprintln!("dead letters: {} for {refused} refused events ({} distinct sources)", msgs.len(), by_source.len());
+    assert_eq!(by_source.len(), refused, "every refused event dead-lettered, each source once or more");
 }
 
 #[test]
@@ -382,4 +406,113 @@ fn large_snapshots_are_written_in_parts_and_restored_whole() {
         complete.as_secs_f64()
     );
     again.stop();
+}
+
+/// `apportion_events_total{outcome="applied"}` of one instance, over both kinds.
+fn applied(s: &SidecarProcess) -> Option<f64> {
+    let scrape = s.get("/metrics")?.1;
+    Some(
+        metric(&scrape, "apportion_events_total", &[("kind", "impression"), ("outcome", "applied")]).unwrap_or(0.0)
+            + metric(&scrape, "apportion_events_total", &[("kind", "reward"), ("outcome", "applied")]).unwrap_or(0.0),
+    )
+}
+
+/// Experiments an instance holds, from its `/experiments`.
+fn held(s: &SidecarProcess) -> usize {
+    s.get("/experiments").and_then(|(_, b)| serde_json::from_str::<serde_json::Value>(&b).ok()).and_then(|v| v.as_object().map(|o| o.len())).unwrap_or(0)
+}
+
+/// Counters are Prometheus counters per process, and a hand-over between live instances moves
+/// none of them: B joining and leaving with no new input leaves A at the 10 000 events it
+/// applied and B at 0, so the sum over instances counts every event once (the rule is in
+/// `src/stream/counts.rs`).
+#[test]
+fn hand_overs_between_live_instances_move_no_counter() {
+    let _one = exclusive();
+    let brokers = brokers();
+    let cfg = ProcConfig::new("counts", &brokers, 3);
+    let (messages, want) = workload(10_000, 9, 44);
+    let distinct: f64 = want.values().map(|w| w.0 as f64 + w.1).sum();
+    let (pa, pb) = (free_port(), free_port());
+    let a = SidecarProcess::start(&cfg, pa);
+    assert!(a.wait_ready(Duration::from_secs(60)), "a ready");
+    stream_in_background(brokers.clone(), cfg.topic("events"), messages, 1.0).join().expect("producer");
+    assert!(wait_until(Duration::from_secs(120), || applied(&a) == Some(distinct)), "a applied {:?} of {distinct}", applied(&a));
+    let b = SidecarProcess::start(&cfg, pb);
+    assert!(b.wait_ready(Duration::from_secs(90)), "b ready");
+    assert!(wait_until(Duration::from_secs(90), || held(&b) > 0 && held(&a) + held(&b) == 9), "the experiments spread over both");
+    let (during_a, during_b) = (applied(&a), applied(&b));
+    assert!(b.stop(), "b leaves cleanly");
+    assert!(wait_until(Duration::from_secs(90), || held(&a) == 9), "a holds everything again");
+    let after_a = applied(&a);
+    eprintln!("counters: a {during_a:?} and b {during_b:?} while both ran, a {after_a:?} after b left; {distinct} events");
+    assert_eq!(during_a, Some(distinct), "a's counter did not grow while b took partitions");
+    assert_eq!(during_b, Some(0.0), "b counts nothing it did not apply");
+    assert_eq!(after_a, Some(distinct), "a's counter did not grow when b handed the partitions back");
+    assert!(a.stop());
+}
+
+/// In the order the state topic holds them, each partition's snapshots never go back in
+/// offset: a stale writer's snapshot would.
+fn assert_snapshots_move_forward(state_topic: &str) {
+    use apportion::stream::snapshot::Stored;
+    let msgs = read_topic(state_topic, Duration::from_secs(20), |_| false);
+    let mut last: BTreeMap<String, i64> = BTreeMap::new();
+    for m in &msgs {
+        let key = String::from_utf8_lossy(m.key().unwrap_or_default()).to_string();
+        if let Ok(Stored::Whole(s)) = Stored::decode(m.payload().unwrap_or_default()) {
+            let prev = last.insert(key.clone(), s.next_offset).unwrap_or(0);
+            assert!(s.next_offset >= prev, "{key}: snapshot at offset {} written after one at {prev}", s.next_offset);
+        }
+    }
+    assert!(!last.is_empty(), "snapshots were written");
+}
+
+/// A member stopped (SIGSTOP) past its session while another takes its partitions over writes
+/// nothing for them when it wakes: every weights version stays above the one before, and no
+/// snapshot goes back in offset.
+#[test]
+fn a_member_woken_after_losing_its_partitions_writes_nothing_for_them() {
+    let _one = exclusive();
+    let brokers = brokers();
+    let cfg = ProcConfig::new("paused", &brokers, 3);
+    let (first, want_first) = workload(6_000, 6, 45);
+    let (pa, pb) = (free_port(), free_port());
+    let a = SidecarProcess::start(&cfg, pa);
+    assert!(a.wait_ready(Duration::from_secs(60)), "a ready");
+    stream_in_background(brokers.clone(), cfg.topic("events"), first, 1.0).join().expect("producer");
+    let n_first: f64 = want_first.values().map(|w| w.0 as f64 + w.1).sum();
+    assert!(wait_until(Duration::from_secs(120), || applied(&a) == Some(n_first)), "a applied the first events");
+    signal(a.child.id(), "STOP");
+    let b = SidecarProcess::start(&cfg, pb);
+    // A plain member joining and leaving the group makes the broker settle without the
+    // stopped one (tansu 0.6 keeps waiting for it otherwise).
+    let settled = wait_until(Duration::from_secs(120), || {
+        let c: rdkafka::consumer::BaseConsumer = ClientConfig::new()
+            .set("bootstrap.servers", &brokers)
+            .set("group.id", format!("{}.group", cfg.id))
+            .set("session.timeout.ms", "6000")
+            .create()
+            .expect("consumer");
+        let _ = rdkafka::consumer::Consumer::subscribe(&c, &[&cfg.topic("events")]);
+        let until = Instant::now() + Duration::from_secs(3);
+        while Instant::now() < until {
+            let _ = c.poll(Duration::from_millis(100));
+        }
+        drop(c);
+        held(&b) == 6
+    });
+    assert!(settled, "b took every partition over from the stopped member");
+    let (second, _) = workload(3_000, 6, 46);
+    let second: Vec<(String, Vec<u8>)> =
+        second.into_iter().map(|(k, v)| (k, String::from_utf8_lossy(&v).replace(r#""event_id":"e"#, r#""event_id":"s"#).into_bytes())).collect();
+    stream_in_background(brokers.clone(), cfg.topic("events"), second, 1.0).join().expect("producer");
+    assert!(wait_until(Duration::from_secs(60), || applied(&b).unwrap_or(0.0) > 0.0), "b applies the new events");
+    signal(a.child.id(), "CONT");
+    // Awake, a finds its assignment lost and joins again; once the group has settled it holds
+    // partitions restored from b's snapshots.
+    assert!(wait_until(Duration::from_secs(120), || held(&a) > 0 && held(&a) + held(&b) == 6), "the group settles with both");
+    assert!(a.stop() && b.stop(), "both leave cleanly");
+    assert_versions_increase(&cfg.topic("weights"), 6);
+    assert_snapshots_move_forward(&cfg.topic("state"));
 }

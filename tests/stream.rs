@@ -320,3 +320,98 @@ fn metrics_pass_promtool_and_readiness_follows_the_assignment() {
     let out = child.wait_with_output().unwrap();
     assert!(out.status.success(), "promtool: {}{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
 }
+
+/// Produces `(partition, key, value)` messages in order and waits until the broker has them.
+fn produce_to(topic: &str, messages: &[(i32, &str, Vec<u8>)]) {
+    use rdkafka::config::ClientConfig;
+    use rdkafka::producer::{BaseProducer, BaseRecord, Producer};
+    let p: BaseProducer = ClientConfig::new().set("bootstrap.servers", brokers()).create().expect("producer");
+    for (part, key, value) in messages {
+        p.send(BaseRecord::to(topic).partition(*part).key(key.as_bytes()).payload(&value[..])).expect("queued");
+        p.poll(Duration::ZERO);
+    }
+    p.flush(Duration::from_secs(30)).expect("all messages delivered");
+}
+
+/// Arms join only on evidence, experiments only by a valid impression: refused rewards for a
+/// new arm, for an arm never shown, and for an experiment on a partition that does not hold it
+/// leave nothing in the state, the snapshots or the weights but their counters and dead letters.
+#[test]
+fn refused_events_leave_no_arm_and_no_experiment_behind() {
+    let cfg = config("evidence", 2);
+    let now = apportion::stream::pipeline::now_ms();
+    let mut messages: Vec<(i32, &str, Vec<u8>)> = Vec::new();
+    let mut rng = StdRng::seed_from_u64(12);
+    let mut valid = 0u64;
+    let mut good = |messages: &mut Vec<(i32, &str, Vec<u8>)>, round: usize| {
+        for i in 0..300 {
+            let arm = ["a", "b", "c"][i % 3];
+            messages.push((1, "m", impression(&format!("i{round}-{i}"), "m", arm, now)));
+            if rng.gen::<f64>() < 0.2 {
+                messages.push((1, "m", reward(&format!("r{round}-{i}"), "m", arm, now, 1.0)));
+                valid += 1;
+            }
+            valid += 1;
+        }
+    };
+    good(&mut messages, 0);
+    messages.push((1, "m", reward("bad-1", "m", "ghost", now, 5.0)));
+    messages.push((1, "m", reward("bad-2", "m", "ghost2", now, 1.0)));
+    messages.push((0, "m", reward("bad-3", "m", "a", now, 5.0)));
+    messages.push((0, "m", reward("bad-4", "m", "a", now, 1.0)));
+    messages.push((0, "never-seen", reward("bad-5", "never-seen", "x", now, 1.0)));
+    good(&mut messages, 1);
+    let sidecar = Sidecar::start(cfg.clone());
+    sidecar.wait_ready(Duration::from_secs(60));
+    produce_to(&cfg.kafka.input_topic, &messages);
+    let applied = |s: &str| {
+        metric(s, "apportion_events_total", &[("kind", "impression"), ("outcome", "applied")]).unwrap_or(0.0)
+            + metric(s, "apportion_events_total", &[("kind", "reward"), ("outcome", "applied")]).unwrap_or(0.0)
+    };
+    let caught_up = wait_until(Duration::from_secs(60), || {
+        let s = sidecar.get("/metrics").1;
+        applied(&s) == valid as f64 && metric(&s, "apportion_dead_letters_total", &[("reason", "unknown-arm")]) == Some(3.0)
+    });
+    assert!(caught_up, "every valid event applied and the refused ones dead-lettered");
+    let scrape = sidecar.get("/metrics").1;
+    assert_eq!(metric(&scrape, "apportion_dead_letters_total", &[("reason", "reward-out-of-range")]), Some(2.0));
+    assert_eq!(metric(&scrape, "apportion_unmatched_rewards_total", &[("experiment", "m")]), Some(2.0));
+    assert_eq!(metric(&scrape, "apportion_unmatched_rewards_total", &[("experiment", "never-seen")]), None, "no series for a made-up experiment");
+    let shown: Value = serde_json::from_str(&sidecar.get("/experiments").1).expect("/experiments JSON");
+    let exps: Vec<&String> = shown.as_object().expect("an object").keys().collect();
+    assert_eq!(exps, ["m"], "no experiment created by a refused event");
+    let arms: Vec<&String> = shown["m"]["arms"].as_object().expect("arms").keys().collect();
+    assert_eq!(arms, ["a", "b", "c"], "no arm created by a refused event");
+    sidecar.stop();
+
+    // The snapshot of partition 0, which saw only refused events, holds no experiment.
+    let state = read_topic(&cfg.kafka.state_topic, Duration::from_secs(10), |_| false);
+    let mut experiments_of: BTreeMap<i32, Vec<String>> = BTreeMap::new();
+    for m in &state {
+        if let Ok(apportion::stream::snapshot::Stored::Whole(s)) = apportion::stream::snapshot::Stored::decode(m.payload().unwrap_or_default()) {
+            experiments_of.insert(s.partition, s.experiments.keys().cloned().collect());
+        }
+    }
+    assert_eq!(experiments_of.get(&0), Some(&Vec::new()), "partition 0 keeps no copy of m");
+    assert_eq!(experiments_of.get(&1), Some(&vec!["m".to_string()]));
+
+    // After a restart, m is published by one copy, with its three arms only.
+    let sidecar = Sidecar::start(cfg.clone());
+    sidecar.wait_ready(Duration::from_secs(60));
+    produce_to(&cfg.kafka.input_topic, &[(1, "m", impression("after-restart", "m", "a", now))]);
+    let weights = read_topic(&cfg.kafka.weights_topic, Duration::from_secs(30), |ms| {
+        ms.iter().any(|m| serde_json::from_slice::<Value>(m.payload().unwrap_or_default()).is_ok_and(|v| v["arms"]["a"]["pulls"].as_u64() > Some(200)))
+            && ms.len() >= 2
+    });
+    sidecar.stop();
+    let mut last = 0;
+    for m in &weights {
+        let v: Value = serde_json::from_slice(m.payload().unwrap_or_default()).expect("weights JSON");
+        let arms: Vec<&String> = v["weights"].as_object().expect("weights").keys().collect();
+        assert_eq!(arms, ["a", "b", "c"], "{v}");
+        let version = v["version"].as_u64().unwrap_or(0);
+        assert!(version > last, "version {version} after {last}");
+        last = version;
+    }
+    assert!(last > 0, "weights were published");
+}
