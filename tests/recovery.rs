@@ -475,7 +475,9 @@ fn assert_snapshots_move_forward(state_topic: &str) {
 fn a_member_woken_after_losing_its_partitions_writes_nothing_for_them() {
     let _one = exclusive();
     let brokers = brokers();
-    let cfg = ProcConfig::new("paused", &brokers, 3);
+    let mut cfg = ProcConfig::new("paused", &brokers, 3);
+    // The stopped member's rebalance timeout: the broker gives up waiting for it after this.
+    cfg.max_poll_interval_ms = Some(10_000);
     let (first, want_first) = workload(6_000, 6, 45);
     let (pa, pb) = (free_port(), free_port());
     let a = SidecarProcess::start(&cfg, pa);

@@ -38,11 +38,13 @@ pub struct Report {
     /// Index of the arm with the highest estimated mean among arms with pulls (the first such
     /// arm on ties); `None` before any pull.
     pub leader: Option<usize>,
-    /// Σⱼ nⱼ·(μ̂_leader − μ̂ⱼ) in reward units: an estimate of the pseudo-regret so far, taken with
-    /// the estimates of the moment (so it can move down as well as up). nⱼ counts every pull ever
-    /// made, so the figure stays cumulative; under decay μ̂ are the discounted means, the
-    /// estimates of the moment, so every past pull is priced at the gap as it is estimated now
-    /// (the pseudo-regret had today's means held throughout), not at the gap of its own time.
+    /// Σⱼ nⱼ·(μ̄* − μ̄ⱼ) in reward units: an estimate of the pseudo-regret so far, taken with
+    /// the estimates of the moment (so it can move down as well as up). nⱼ counts every pull
+    /// ever made and μ̄ⱼ is the arm's all-time mean (μ̄* the largest), so pulls and means are
+    /// counted alike: without decay μ̄ⱼ is the reported mean and μ̄* the leader's; under decay
+    /// the discounted means, which follow drift, drive the policy and the leader, but pricing
+    /// every pull ever made at a gap seen through recent traffic alone would mix two different
+    /// counts.
     pub regret_estimate: f64,
 }
 
@@ -88,10 +90,22 @@ pub fn report(stats: &[ArmStats], model: RewardModel, now_ms: i64, half_life: Ha
     }
     let mut regret = 0.0;
     if let Some(l) = leader {
-        let (best, floor) = (arms[l].mean, arms[l].ci_low);
+        let floor = arms[l].ci_low;
         for (j, a) in arms.iter_mut().enumerate() {
             a.undecided = j != l && a.ci_high >= floor;
-            regret += a.pulls as f64 * (best - a.mean);
+        }
+        let all_time: Vec<Option<f64>> = stats
+            .iter()
+            .map(|s| {
+                let n = s.pulls_total as f64;
+                (n > 0.0).then(|| clamp_sum(n, s.reward_total, model.max()) / n)
+            })
+            .collect();
+        let best = all_time.iter().flatten().copied().fold(f64::NEG_INFINITY, f64::max);
+        for (s, m) in stats.iter().zip(&all_time) {
+            if let Some(m) = m {
+                regret += s.pulls_total as f64 * (best - m);
+            }
         }
     }
     Report { arms, leader, regret_estimate: regret }

@@ -189,6 +189,9 @@ pub struct ProcConfig {
     /// Consumer session timeout. Short by default so that a killed instance's partitions move
     /// on quickly; longer than any broker pause a test makes, so the pause does not expire it.
     pub session_timeout_ms: u32,
+    /// `max.poll.interval.ms`, when set: also the member's rebalance timeout, for which a
+    /// broker may hold a rebalance open while a member is gone (tansu 0.6 does).
+    pub max_poll_interval_ms: Option<u32>,
     pub extra: String,
 }
 
@@ -200,6 +203,7 @@ impl ProcConfig {
             partitions,
             port: free_port(),
             session_timeout_ms: 6000,
+            max_poll_interval_ms: None,
             extra: String::new(),
         }
     }
@@ -223,6 +227,7 @@ topic_partitions = {partitions}
 [kafka.client]
 "session.timeout.ms" = "{session}"
 "heartbeat.interval.ms" = "{heartbeat}"
+{max_poll}
 
 [publish]
 interval_seconds = 0.2
@@ -243,6 +248,7 @@ level = "warn"
             partitions = self.partitions,
             session = self.session_timeout_ms,
             heartbeat = (self.session_timeout_ms / 6).max(500),
+            max_poll = self.max_poll_interval_ms.map(|ms| format!(r#""max.poll.interval.ms" = "{ms}""#)).unwrap_or_default(),
             extra = self.extra,
         );
         let path = std::env::temp_dir().join(format!("{}-{port}.toml", self.id));
