@@ -162,8 +162,7 @@ fn crashes_at_random_moments_lose_nothing_and_count_nothing_twice() {
     }
     assert_totals(&last, &want);
     let scrape = sidecar.get("/metrics").map(|(_, b)| b).unwrap_or_default();
-    let applied = metric(&scrape, "apportion_events_total", &[("kind", "impression"), ("outcome", "applied")]).unwrap_or(0.0)
-        + metric(&scrape, "apportion_events_total", &[("kind", "reward"), ("outcome", "applied")]).unwrap_or(0.0);
+    let applied = applied_events(&scrape);
     let distinct: u64 = want.values().map(|w| w.0 + w.1 as u64).sum();
     assert_eq!(applied as u64, distinct, "applied events counted once, across restarts");
     assert!(sidecar.stop(), "clean shutdown");
@@ -350,11 +349,7 @@ fn large_snapshots_are_written_in_parts_and_restored_whole() {
     let sidecar = Sidecar::start(cfg.clone());
     sidecar.wait_ready(Duration::from_secs(60));
     produce(&cfg.kafka.input_topic, &messages);
-    let applied = |s: &Sidecar| {
-        let scrape = s.get("/metrics").1;
-        metric(&scrape, "apportion_events_total", &[("kind", "impression"), ("outcome", "applied")]).unwrap_or(0.0)
-            + metric(&scrape, "apportion_events_total", &[("kind", "reward"), ("outcome", "applied")]).unwrap_or(0.0)
-    };
+    let applied = |s: &Sidecar| applied_events(&s.get("/metrics").1);
     assert!(wait_until(Duration::from_secs(300), || applied(&sidecar) as usize >= messages.len()), "every event applied");
     sidecar.stop();
 
@@ -410,11 +405,7 @@ fn large_snapshots_are_written_in_parts_and_restored_whole() {
 
 /// `apportion_events_total{outcome="applied"}` of one instance, over both kinds.
 fn applied(s: &SidecarProcess) -> Option<f64> {
-    let scrape = s.get("/metrics")?.1;
-    Some(
-        metric(&scrape, "apportion_events_total", &[("kind", "impression"), ("outcome", "applied")]).unwrap_or(0.0)
-            + metric(&scrape, "apportion_events_total", &[("kind", "reward"), ("outcome", "applied")]).unwrap_or(0.0),
-    )
+    Some(applied_events(&s.get("/metrics")?.1))
 }
 
 /// Experiments an instance holds, from its `/experiments`.

@@ -364,13 +364,9 @@ fn refused_events_leave_no_arm_and_no_experiment_behind() {
     let sidecar = Sidecar::start(cfg.clone());
     sidecar.wait_ready(Duration::from_secs(60));
     produce_to(&cfg.kafka.input_topic, &messages);
-    let applied = |s: &str| {
-        metric(s, "apportion_events_total", &[("kind", "impression"), ("outcome", "applied")]).unwrap_or(0.0)
-            + metric(s, "apportion_events_total", &[("kind", "reward"), ("outcome", "applied")]).unwrap_or(0.0)
-    };
     let caught_up = wait_until(Duration::from_secs(60), || {
         let s = sidecar.get("/metrics").1;
-        applied(&s) == valid as f64 && metric(&s, "apportion_dead_letters_total", &[("reason", "unknown-arm")]) == Some(3.0)
+        applied_events(&s) == valid as f64 && metric(&s, "apportion_dead_letters_total", &[("reason", "unknown-arm")]) == Some(3.0)
     });
     assert!(caught_up, "every valid event applied and the refused ones dead-lettered");
     let scrape = sidecar.get("/metrics").1;

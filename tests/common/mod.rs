@@ -180,6 +180,14 @@ pub fn metric(scrape: &str, name: &str, labels: &[(&str, &str)]) -> Option<f64> 
     })
 }
 
+/// `apportion_events_total{outcome="applied"}` over both kinds, from a scrape.
+pub fn applied_events(scrape: &str) -> f64 {
+    ["impression", "reward"]
+        .iter()
+        .map(|kind| metric(scrape, "apportion_events_total", &[("kind", kind), ("outcome", "applied")]).unwrap_or(0.0))
+        .sum()
+}
+
 /// The TOML of a sidecar configuration with its own topics and group, for child processes.
 pub struct ProcConfig {
     pub id: String,
