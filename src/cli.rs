@@ -1,7 +1,7 @@
 //! The command line: parses arguments and calls the library.
 
 use std::io::IsTerminal;
-use std::net::SocketAddr;
+use std::future::Future;
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 use std::sync::Arc;
@@ -12,7 +12,6 @@ use indicatif::{ProgressBar, ProgressStyle};
 use crate::config::{self, Config, ConfigError, ResolvedExperiment, Source};
 use crate::console::{self, Unwritable};
 use crate::core::{PolicySpec, RewardModel};
-use crate::shutdown::Shutdown;
 use crate::telemetry::http::Served;
 use crate::sim::{self, SimSpec};
 use crate::telemetry::Metrics;
@@ -80,12 +79,13 @@ pub struct SimulateArgs {
     pub plot: Option<PathBuf>,
 }
 
-/// Runs the command line; the exit code is 2 for bad input, 1 for failures.
-pub fn main() -> ExitCode {
+/// Runs the command line until done or until `signal` completes (the binary passes
+/// [`crate::shutdown::terminated`]); the exit code is 2 for bad input, 1 for failures.
+pub fn main(signal: impl Future<Output = ()> + Send + 'static) -> ExitCode {
     let cli = Cli::parse();
     match cli.command {
-        Command::Run { config } => run(config),
-        Command::Demo(args) => crate::demo::main(args),
+        Command::Run { config } => run(config, signal),
+        Command::Demo(args) => crate::demo::main(args, signal),
         Command::Simulate(args) => simulate(args),
         Command::Check { config } => check(config),
     }
@@ -104,7 +104,7 @@ pub fn load_config(path: Option<PathBuf>) -> Result<(Config, Source), ConfigErro
     }
 }
 
-fn run(path: Option<PathBuf>) -> ExitCode {
+fn run(path: Option<PathBuf>, signal: impl Future<Output = ()> + Send + 'static) -> ExitCode {
     let (cfg, source) = match load_config(path) {
         Ok(c) => c,
         Err(e) => {
@@ -132,7 +132,14 @@ fn run(path: Option<PathBuf>) -> ExitCode {
             return ExitCode::FAILURE;
         }
     };
-    match runtime.block_on(serve_sidecar(cfg, Shutdown::new(), true)) {
+    let served = match Metrics::new() {
+        Ok(m) => Served::new(Arc::new(m)),
+        Err(e) => {
+            eprintln!("apportion run: cannot register the metrics: {e}");
+            return ExitCode::FAILURE;
+        }
+    };
+    match runtime.block_on(crate::app::run(cfg, served, signal)) {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {
             tracing::error!("{e:#}");
@@ -140,27 +147,6 @@ fn run(path: Option<PathBuf>) -> ExitCode {
             ExitCode::FAILURE
         }
     }
-}
-
-/// The sidecar with its HTTP endpoints, until `shutdown` (or a signal, when `signals`).
-pub async fn serve_sidecar(cfg: Config, shutdown: Shutdown, signals: bool) -> anyhow::Result<()> {
-    let metrics = Arc::new(Metrics::new()?);
-    let served = Served::new(metrics);
-    serve_sidecar_with(cfg, served, shutdown, signals).await
-}
-
-/// As [`serve_sidecar`], with the served state made by the caller (the demo reads it).
-pub async fn serve_sidecar_with(cfg: Config, served: Arc<Served>, shutdown: Shutdown, signals: bool) -> anyhow::Result<()> {
-    if signals {
-        shutdown.on_signals();
-    }
-    let addr: SocketAddr = cfg.metrics.listen.parse()?;
-    let (local, http) = crate::telemetry::http::serve(addr, served.clone(), shutdown.clone()).await?;
-    tracing::info!("metrics on http://{local}/metrics");
-    let result = crate::stream::run(cfg, served, shutdown.clone()).await;
-    shutdown.trigger();
-    let _ = http.await;
-    result
 }
 
 fn check(path: Option<PathBuf>) -> ExitCode {

@@ -1,7 +1,9 @@
 //! apportion: allocates live traffic between the arms of experiments with multi-armed bandit
 //! policies. See README.md for the job and DEVELOPERS.md for the map of the code.
 
+pub mod app;
 pub mod cli;
+pub mod clock;
 pub mod config;
 pub mod console;
 pub mod core;

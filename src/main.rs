@@ -1,3 +1,3 @@
 fn main() -> std::process::ExitCode {
-    apportion::cli::main()
+    apportion::cli::main(apportion::shutdown::terminated())
 }

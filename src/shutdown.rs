@@ -1,6 +1,7 @@
 //! One shutdown signal, observed everywhere.
 //!
-//! SIGTERM or SIGINT sets it once; the pipeline thread checks it between polls (it stops
+//! The signal future given to [`crate::app::run`] (SIGTERM or SIGINT for the binary, see
+//! [`terminated`]) sets it once; the pipeline thread checks it between polls (it stops
 //! consuming, finishes the message in hand, publishes, snapshots and flushes), and async tasks
 //! await it. A second signal does nothing more: shutdown is already under way.
 
@@ -29,6 +30,13 @@ impl Shutdown {
         self.flag.load(Ordering::SeqCst)
     }
 
+    /// A future that completes once this is triggered, owning its handle: the signal to give
+    /// [`crate::app::run`] when the caller stops things itself (the demo, the tests).
+    pub fn triggered(&self) -> impl std::future::Future<Output = ()> + Send + 'static {
+        let me = self.clone();
+        async move { me.wait().await }
+    }
+
     pub async fn wait(&self) {
         loop {
             let notified = self.notify.notified();
@@ -38,32 +46,27 @@ impl Shutdown {
             notified.await;
         }
     }
+}
 
-    /// Triggers on SIGTERM or SIGINT.
-    pub fn on_signals(&self) {
-        let me = self.clone();
-        tokio::spawn(async move {
-            let ctrl_c = tokio::signal::ctrl_c();
-            #[cfg(unix)]
-            {
-                let mut term = match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
-                    Ok(s) => s,
-                    Err(e) => {
-                        tracing::warn!("cannot watch SIGTERM: {e}");
-                        let _ = ctrl_c.await;
-                        me.trigger();
-                        return;
-                    }
-                };
+/// Completes on SIGTERM or SIGINT (Ctrl-C): the signal the binary hands to [`crate::app::run`].
+/// If SIGTERM cannot be watched, only Ctrl-C is, and a warning says so.
+pub async fn terminated() {
+    let ctrl_c = tokio::signal::ctrl_c();
+    #[cfg(unix)]
+    {
+        match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+            Ok(mut term) => {
                 tokio::select! {
                     _ = ctrl_c => {},
                     _ = term.recv() => {},
                 }
             }
-            #[cfg(not(unix))]
-            let _ = ctrl_c.await;
-            tracing::info!("shutdown requested");
-            me.trigger();
-        });
+            Err(e) => {
+                tracing::warn!("cannot watch SIGTERM: {e}");
+                let _ = ctrl_c.await;
+            }
+        }
     }
+    #[cfg(not(unix))]
+    let _ = ctrl_c.await;
 }

@@ -915,7 +915,7 @@ fn a_flood_of_new_experiments_and_arms_is_dead_lettered_within_bounded_memory() 
     sidecar.wait_ready(Duration::from_secs(120));
     let (start_hwm, _) = sidecar.memory_kb();
     let input = names.topic("events");
-    let now = apportion::stream::pipeline::now_ms();
+    let now = apportion::clock::now_ms();
     let started = Instant::now();
 
     // The four experiments that get the arm flood are created first, so that exactly which
@@ -1009,7 +1009,7 @@ fn survives(name: &str, sections: &str, hostile: &[String]) {
     let names = Names::new(name);
     let mut sidecar = SidecarChild::start(&names.toml(1, sections), names.port, &[]);
     sidecar.wait_ready(Duration::from_secs(120));
-    let now = apportion::stream::pipeline::now_ms();
+    let now = apportion::clock::now_ms();
     let mut messages: Vec<(String, Vec<u8>)> = hostile.iter().map(|m| ("edge".to_string(), m.clone().into_bytes())).collect();
     messages.push(("edge".to_string(), impression("after", "edge", "a", now).into_bytes()));
     produce(&names.topic("events"), &messages);
@@ -1032,14 +1032,14 @@ fn survives(name: &str, sections: &str, hostile: &[String]) {
 
 #[test]
 fn impression_counts_that_overflow_the_totals_do_not_stop_the_stream() {
-    let now = apportion::stream::pipeline::now_ms();
+    let now = apportion::clock::now_ms();
     let big = |id: &str| format!(r#"{{"event_id":"{id}","kind":"impression","experiment":"edge","arm":"a","ts_ms":{now},"count":{}}}"#, u64::MAX);
     survives("overflow", "", &[big("max-1"), big("max-2")]);
 }
 
 #[test]
 fn event_times_at_the_ends_of_the_range_do_not_stop_a_decaying_experiment() {
-    let now = apportion::stream::pipeline::now_ms();
+    let now = apportion::clock::now_ms();
     survives(
         "time-range",
         "[defaults]\nhalf_life_seconds = 60\n",
@@ -1071,7 +1071,7 @@ fn client_secrets_appear_in_no_log_endpoint_or_topic() {
     let secrets = [in_file.as_str(), in_env.as_str()];
     let mut sidecar = SidecarChild::start(&toml, names.port, &env);
     sidecar.wait_ready(Duration::from_secs(120));
-    let now = apportion::stream::pipeline::now_ms();
+    let now = apportion::clock::now_ms();
     let events: Vec<(String, Vec<u8>)> = (0..20)
         .map(|i| ("secret-exp".to_string(), impression(&format!("s{i}"), "secret-exp", ["a", "b"][i % 2], now).into_bytes()))
         .chain(std::iter::once(("secret-exp".to_string(), b"not json".to_vec())))

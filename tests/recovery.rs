@@ -29,7 +29,7 @@ fn workload(events: usize, experiments: usize, seed: u64) -> (Vec<(String, Vec<u
     let mut rng = StdRng::seed_from_u64(seed);
     let mut out = Vec::with_capacity(events + events / 40);
     let mut want: Totals = BTreeMap::new();
-    let t0 = apportion::stream::pipeline::now_ms() - 60_000;
+    let t0 = apportion::clock::now_ms() - 60_000;
     for i in 0..events {
         let exp = format!("exp-{}", rng.gen_range(0..experiments));
         let arm = format!("arm-{}", rng.gen_range(0..4));
@@ -279,7 +279,7 @@ fn resuming_inside_a_record_batch_applies_the_rest_of_that_batch() {
     create_topics(&[&cfg.kafka.input_topic, &cfg.kafka.state_topic], 1);
     // Three batches of 100 impressions: offsets 0–149 go to arm "before", 150–299 to "after".
     let p: BaseProducer = ClientConfig::new().set("bootstrap.servers", brokers()).set("linger.ms", "1000").create().expect("producer");
-    let t0 = apportion::stream::pipeline::now_ms() - 10_000;
+    let t0 = apportion::clock::now_ms() - 10_000;
     for batch in 0..3 {
         for i in batch * 100..(batch + 1) * 100 {
             let arm = if i < 150 { "before" } else { "after" };
@@ -295,7 +295,7 @@ fn resuming_inside_a_record_batch_applies_the_rest_of_that_batch() {
         partition: 0,
         next_offset: 150,
         generation: 1,
-        written_at_ms: apportion::stream::pipeline::now_ms(),
+        written_at_ms: apportion::clock::now_ms(),
         group_generation: -1,
         handed_over: false,
         experiments: BTreeMap::new(),
@@ -335,7 +335,7 @@ fn large_snapshots_are_written_in_parts_and_restored_whole() {
     let (experiments, arms) = (10_000usize, 10usize);
     let mut messages = Vec::with_capacity(experiments * (arms + 1));
     let mut want = Totals::new();
-    let t0 = apportion::stream::pipeline::now_ms() - 60_000;
+    let t0 = apportion::clock::now_ms() - 60_000;
     for e in 0..experiments {
         let exp = format!("exp-{e:05}");
         for a in 0..arms {

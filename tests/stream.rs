@@ -136,7 +136,7 @@ fn malformed_messages_are_dead_lettered_with_their_reason_and_the_stream_goes_on
     cfg.defaults.auto_create = false;
     cfg.limits.arms_per_experiment = 3;
     cfg.experiments = vec![declare("ctr", &[], PolicyName::Thompson, RewardModel::Bernoulli, 0.0)];
-    let now = apportion::stream::pipeline::now_ms();
+    let now = apportion::clock::now_ms();
     let bad: Vec<(&str, String)> = vec![
         ("not-json", "this is not json".into()),
         ("not-object", "[1,2,3]".into()),
@@ -339,7 +339,7 @@ fn produce_to(topic: &str, messages: &[(i32, &str, Vec<u8>)]) {
 #[test]
 fn refused_events_leave_no_arm_and_no_experiment_behind() {
     let cfg = config("evidence", 2);
-    let now = apportion::stream::pipeline::now_ms();
+    let now = apportion::clock::now_ms();
     let mut messages: Vec<(i32, &str, Vec<u8>)> = Vec::new();
     let mut rng = StdRng::seed_from_u64(12);
     let mut valid = 0u64;

@@ -14,12 +14,6 @@ pub struct Interval {
     pub high: f64,
 }
 
-impl Interval {
-    pub fn width(&self) -> f64 {
-        self.high - self.low
-    }
-}
-
 /// Wilson score interval for `successes` out of `trials` (Wilson 1927, "Probable inference, the
 /// law of succession, and statistical inference", JASA 22). It stays inside [0, 1], behaves at
 /// 0/n and n/n (where the normal interval collapses to a point), and takes fractional counts,

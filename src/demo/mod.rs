@@ -4,6 +4,8 @@
 mod scenario;
 mod traffic;
 
+use std::collections::BTreeMap;
+use std::future::Future;
 use std::io::IsTerminal;
 use std::process::ExitCode;
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
@@ -20,6 +22,7 @@ use crate::config::Config;
 use crate::{say, sayln};
 use crate::shutdown::Shutdown;
 use crate::telemetry::http::Served;
+use crate::telemetry::table::ExperimentRow;
 use crate::telemetry::Metrics;
 use scenario::{best_arm, WORLD};
 use traffic::Traffic;
@@ -45,7 +48,8 @@ pub struct DemoArgs {
     pub generator_only: bool,
 }
 
-pub fn main(args: DemoArgs) -> ExitCode {
+/// Runs the demo until `--seconds` pass or `signal` completes.
+pub fn main(args: DemoArgs, signal: impl Future<Output = ()> + Send + 'static) -> ExitCode {
     let runtime = match tokio::runtime::Runtime::new() {
         Ok(r) => r,
         Err(e) => {
@@ -53,7 +57,7 @@ pub fn main(args: DemoArgs) -> ExitCode {
             return ExitCode::FAILURE;
         }
     };
-    match runtime.block_on(demo(args)) {
+    match runtime.block_on(demo(args, signal)) {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) if crate::console::is_closed(&e) => ExitCode::SUCCESS,
         Err(e) => {
@@ -63,7 +67,7 @@ pub fn main(args: DemoArgs) -> ExitCode {
     }
 }
 
-async fn demo(args: DemoArgs) -> anyhow::Result<()> {
+async fn demo(args: DemoArgs, signal: impl Future<Output = ()> + Send + 'static) -> anyhow::Result<()> {
     let mut cfg = Config::from_toml(DEMO_CONFIG, "config/demo.toml").map_err(|e| anyhow::anyhow!(e))?;
     crate::telemetry::init_logging(&cfg.log.format, &cfg.log.level);
     let mock = match &args.brokers {
@@ -84,7 +88,13 @@ async fn demo(args: DemoArgs) -> anyhow::Result<()> {
         }
     };
     let shutdown = Shutdown::new();
-    shutdown.on_signals();
+    {
+        let shutdown = shutdown.clone();
+        tokio::spawn(async move {
+            signal.await;
+            shutdown.trigger();
+        });
+    }
     let stop = Arc::new(AtomicBool::new(false));
     let produced = Arc::new(AtomicU64::new(0));
     let traffic = Traffic {
@@ -112,7 +122,7 @@ async fn demo(args: DemoArgs) -> anyhow::Result<()> {
     if std::net::TcpListener::bind(&cfg.metrics.listen).is_err() {
         cfg.metrics.listen = "127.0.0.1:0".into();
     }
-    let sidecar = tokio::spawn(crate::cli::serve_sidecar_with(cfg.clone(), served.clone(), shutdown.clone(), false));
+    let sidecar = tokio::spawn(crate::app::run(cfg.clone(), served.clone(), shutdown.triggered()));
     let broker = match &args.brokers {
         Some(b) => format!("the broker at {b}"),
         None => "an in-process broker".into(),
@@ -213,46 +223,37 @@ async fn wait(shutdown: &Shutdown, deadline: Option<Instant>) {
     }
 }
 
-#[derive(serde::Deserialize)]
-struct ViewArm {
-    pulls: u64,
-    mean: f64,
-    ci_low: f64,
-    ci_high: f64,
-    weight: Option<f64>,
+/// The experiments the sidecar serves, as of its last publish round.
+fn rows(served: &Served) -> BTreeMap<String, ExperimentRow> {
+    served.table.read().map(|t| t.rows.clone()).unwrap_or_default()
 }
 
-#[derive(serde::Deserialize)]
-struct View {
-    policy: String,
-    version: u64,
-    leader: Option<String>,
-    regret_estimate: f64,
-    arms: std::collections::BTreeMap<String, ViewArm>,
-}
-
-fn views(served: &Served) -> std::collections::BTreeMap<String, View> {
-    let text = served.experiments_json();
-    serde_json::from_str(&text).unwrap_or_default()
+/// The unit of an experiment's rewards, from the scenario.
+fn unit(experiment: &str) -> &'static str {
+    WORLD.iter().find(|t| t.experiment == experiment).map_or("reward units", |t| t.unit)
 }
 
 /// The live table: experiment, arm, pulls, mean and interval, weight, regret estimate.
 fn render(served: &Served, elapsed: Duration, produced: u64) -> String {
     let mut s = format!("Simmer · {:>4}s · {produced} events produced\n\n", elapsed.as_secs());
     s += &format!("{:<14} {:<15} {:>8} {:>26} {:>8}\n", "experiment", "arm", "pulls", "mean [95% interval]", "weight");
-    for (id, v) in views(served) {
-        for (i, (arm, a)) in v.arms.iter().enumerate() {
-            let lead = if v.leader.as_deref() == Some(arm.as_str()) { "*" } else { " " };
+    for (id, e) in rows(served) {
+        for (i, a) in e.arms.iter().enumerate() {
+            let lead = if e.leader == Some(i) { "*" } else { " " };
             s += &format!(
                 "{:<14} {lead}{:<14} {:>8} {:>26} {:>8}\n",
                 if i == 0 { id.as_str() } else { "" },
-                arm,
-                a.pulls,
-                format!("{:.4} [{:.4}, {:.4}]", a.mean, a.ci_low, a.ci_high),
+                a.name,
+                a.figures.pulls,
+                format!("{:.4} [{:.4}, {:.4}]", a.figures.mean, a.figures.ci_low, a.figures.ci_high),
                 a.weight.map_or("-".into(), |w| format!("{:.3}", w)),
             );
         }
-        s += &format!("{:<14} policy {}, weights version {}, regret estimate {:.1}\n\n", "", v.policy, v.version, v.regret_estimate);
+        let unit = unit(&id);
+        s += &format!(
+            "{:<14} means in {unit} per impression; policy {}, weights version {}, regret estimate {:.1} {unit}\n\n",
+            "", e.policy, e.version, e.regret_estimate
+        );
     }
     s += "* leader (highest estimated mean)\n";
     s
@@ -260,33 +261,35 @@ fn render(served: &Served, elapsed: Duration, produced: u64) -> String {
 
 /// Where the traffic went, against the truth the sidecar never saw.
 fn summary(served: &Served) -> String {
-    let v = views(served);
+    let rows = rows(served);
     let mut s = String::from("Summary: where the traffic went\n");
     for t in WORLD {
-        let Some(e) = v.get(t.experiment) else {
+        let Some(e) = rows.get(t.experiment) else {
             s += &format!("  {}: no events applied\n", t.experiment);
             continue;
         };
-        let total: u64 = e.arms.values().map(|a| a.pulls).sum::<u64>().max(1);
+        let total: u64 = e.arms.iter().map(|a| a.figures.pulls).sum::<u64>().max(1);
         let heaviest = e
             .arms
             .iter()
-            .max_by(|a, b| a.1.weight.unwrap_or(0.0).total_cmp(&b.1.weight.unwrap_or(0.0)))
-            .map(|(n, _)| n.as_str())
-            .unwrap_or("-");
+            .max_by(|a, b| a.weight.unwrap_or(0.0).total_cmp(&b.weight.unwrap_or(0.0)))
+            .map_or("-", |a| a.name.as_str());
         let best = best_arm(t);
         s += &format!(
-            "  {}: best arm {best} (hidden truth); largest weight now on {heaviest} — {}\n",
+            "  {}: best arm {best} (hidden truth); largest weight now on {heaviest} — {}; regret estimate {:.1} {}\n",
             t.experiment,
-            if heaviest == best { "found" } else { "not yet" }
+            if heaviest == best { "found" } else { "not yet" },
+            e.regret_estimate,
+            t.unit,
         );
         for (arm, truth) in t.arms {
-            let a = e.arms.get(*arm);
+            let a = e.arms.iter().find(|a| a.name == *arm);
             s += &format!(
-                "    {:<14} true mean {:>7} · {:>5.1}% of traffic · weight {}\n",
+                "    {:<14} true mean {:>7} {}/impression · {:>5.1}% of traffic · weight {}\n",
                 arm,
                 truth,
-                100.0 * a.map_or(0, |a| a.pulls) as f64 / total as f64,
+                t.unit,
+                100.0 * a.map_or(0, |a| a.figures.pulls) as f64 / total as f64,
                 a.and_then(|a| a.weight).map_or("-".into(), |w| format!("{w:.3}"))
             );
         }

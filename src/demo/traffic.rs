@@ -19,7 +19,7 @@ use rdkafka::producer::{BaseRecord, DefaultProducerContext, Producer, ThreadedPr
 use rdkafka::{Offset, TopicPartitionList};
 
 use super::scenario::{Truth, WORLD};
-use crate::stream::pipeline::now_ms;
+use crate::clock::now_ms;
 
 pub struct Traffic {
     pub brokers: String,

@@ -81,12 +81,9 @@ impl DedupWindow {
         self.older.iter().chain(&self.current).copied().collect()
     }
 
-    pub fn len(&self) -> usize {
+    #[cfg(test)]
+    fn len(&self) -> usize {
         self.older.len() + self.current.len()
-    }
-
-    pub fn is_empty(&self) -> bool {
-        self.len() == 0
     }
 }
 

@@ -113,18 +113,6 @@ impl Batch {
         Batch { messages: Vec::with_capacity(capacity.max(1)), capacity: capacity.max(1) }
     }
 
-    pub fn len(&self) -> usize {
-        self.messages.len()
-    }
-
-    pub fn is_empty(&self) -> bool {
-        self.messages.is_empty()
-    }
-
-    pub fn is_full(&self) -> bool {
-        self.messages.len() >= self.capacity
-    }
-
     pub fn get(&self, i: usize) -> Option<Fetched<'_>> {
         // SAFETY: every pointer is a live message owned by this batch.
         self.messages.get(i).map(|&m| Fetched(unsafe { &*m }))

@@ -17,6 +17,7 @@ use super::counts::{self, Cells, Outcome};
 use super::dedup::DedupWindow;
 use super::publish::WeightsMessage;
 use super::snapshot::{self, Counters, Pointer, Snapshot, SnapshotOut, Stored};
+use crate::clock::now_ms;
 use crate::config::{Config, ResolvedExperiment};
 use crate::core::{Experiment, ExperimentSpec, Observation, Refusal};
 use crate::event::{self, Kind, Reason};
@@ -227,10 +228,6 @@ pub struct Pipeline {
     closing: bool,
     last_publish: Instant,
     last_snapshot: Instant,
-}
-
-pub fn now_ms() -> i64 {
-    std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map_or(0, |d| d.as_millis() as i64)
 }
 
 impl Ctx {
@@ -979,19 +976,8 @@ fn row(partition: i32, exp: &Experiment, report: &crate::core::report::Report, p
             .arm_names()
             .iter()
             .zip(&report.arms)
-            .zip(exp.arm_stats())
             .enumerate()
-            .map(|(j, ((name, a), st))| ArmRow {
-                name: name.clone(),
-                pulls: a.pulls,
-                reward: a.reward,
-                mean: a.mean,
-                ci_low: a.ci_low,
-                ci_high: a.ci_high,
-                weight: weights.get(j).copied().filter(|w| w.is_finite()),
-                undecided: a.undecided,
-                last_pull_ms: st.last_pull_ms,
-            })
+            .map(|(j, (name, a))| ArmRow { name: name.clone(), figures: a.clone(), weight: weights.get(j).copied().filter(|w| w.is_finite()) })
             .collect(),
     }
 }

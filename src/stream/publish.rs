@@ -4,15 +4,24 @@ use std::collections::BTreeMap;
 
 use serde::Serialize;
 
+use crate::core::report::ArmReport;
 use crate::core::{Allocation, Experiment};
 
-#[derive(Serialize)]
-pub struct ArmSummary {
-    pub pulls: u64,
-    pub reward: f64,
-    pub mean: f64,
-    pub ci_low: f64,
-    pub ci_high: f64,
+/// What the weights message carries of an arm's figures: the contract's five fields.
+pub struct ArmSummary<'a>(&'a ArmReport);
+
+impl Serialize for ArmSummary<'_> {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        use serde::ser::SerializeMap;
+        let a = self.0;
+        let mut m = s.serialize_map(Some(5))?;
+        m.serialize_entry("pulls", &a.pulls)?;
+        m.serialize_entry("reward", &a.reward)?;
+        m.serialize_entry("mean", &a.mean)?;
+        m.serialize_entry("ci_low", &a.ci_low)?;
+        m.serialize_entry("ci_high", &a.ci_high)?;
+        m.end()
+    }
 }
 
 #[derive(Serialize)]
@@ -23,12 +32,12 @@ pub struct WeightsMessage<'a> {
     pub published_at_ms: i64,
     pub leader: Option<&'a str>,
     pub weights: BTreeMap<&'a str, f64>,
-    pub arms: BTreeMap<&'a str, ArmSummary>,
+    pub arms: BTreeMap<&'a str, ArmSummary<'a>>,
     pub regret_estimate: f64,
 }
 
 impl<'a> WeightsMessage<'a> {
-    pub fn new(id: &'a str, exp: &'a Experiment, alloc: &Allocation, now_ms: i64) -> Self {
+    pub fn new(id: &'a str, exp: &'a Experiment, alloc: &'a Allocation, now_ms: i64) -> Self {
         let names = exp.arm_names();
         WeightsMessage {
             experiment: id,
@@ -40,9 +49,7 @@ impl<'a> WeightsMessage<'a> {
             arms: names
                 .iter()
                 .zip(&alloc.report.arms)
-                .map(|(n, a)| {
-                    (n.as_str(), ArmSummary { pulls: a.pulls, reward: a.reward, mean: a.mean, ci_low: a.ci_low, ci_high: a.ci_high })
-                })
+                .map(|(n, a)| (n.as_str(), ArmSummary(a)))
                 .collect(),
             regret_estimate: alloc.report.regret_estimate,
         }

@@ -19,7 +19,8 @@ use rdkafka::{ClientContext, Offset, TopicPartitionList};
 
 use super::fence::{group_generation, Fence};
 use super::fetch::{Batch, FetchQueue};
-use super::pipeline::{now_ms, Pipeline};
+use super::pipeline::Pipeline;
+use crate::clock::now_ms;
 use crate::shutdown::Shutdown;
 use crate::telemetry::http::Served;
 use crate::telemetry::Metrics;

@@ -120,3 +120,54 @@ async fn experiments(State(s): State<Arc<Served>>) -> impl IntoResponse {
     let body = tokio::task::spawn_blocking(move || s.experiments_json()).await.unwrap_or_default();
     ([(header::CONTENT_TYPE, "application/json")], body)
 }
+
+#[cfg(test)]
+mod tests {
+    use std::collections::BTreeSet;
+
+    use super::*;
+    use crate::core::report::ArmReport;
+    use crate::telemetry::names;
+    use crate::telemetry::table::{ArmRow, ExperimentRow};
+
+    #[test]
+    fn a_scrape_holds_exactly_the_named_families() {
+        let served = Served::new(Arc::new(Metrics::new().expect("metrics")));
+        let m = &served.metrics;
+        m.events.with_label_values(&["impression", "applied"]).inc();
+        m.dead_letters.with_label_values(&["malformed"]).inc();
+        m.split.with_label_values(&["e"]).inc();
+        m.unmatched_rewards.with_label_values(&["e"]).inc();
+        m.publish_latency.observe(0.1);
+        m.consumer_lag.with_label_values(&["t", "0"]).set(1);
+        m.snapshot_time.with_label_values(&["0"]).set(1.0);
+        let figures = ArmReport {
+            pulls: 1,
+            reward: 0.0,
+            mean: 0.0,
+            ci_low: 0.0,
+            ci_high: 1.0,
+            undecided: false,
+            last_pull_ms: Some(1),
+            excess_rewards: 0.0,
+        };
+        served.table.write().expect("table").rows.insert(
+            "e".into(),
+            ExperimentRow {
+                version: 1,
+                exploration: Some(0.5),
+                published_ms: Some(1),
+                arms: vec![ArmRow { name: "a".into(), figures, weight: Some(1.0) }],
+                ..ExperimentRow::default()
+            },
+        );
+        let mut text = String::new();
+        served.stream_metrics(1 << 20, &mut |chunk| {
+            text.push_str(&chunk);
+            true
+        });
+        let scraped: BTreeSet<&str> = text.lines().filter_map(|l| l.strip_prefix("# TYPE ")).filter_map(|l| l.split(' ').next()).collect();
+        let named: BTreeSet<&str> = names::ALL.into_iter().collect();
+        assert_eq!(scraped, named, "every family scraped is named in names.rs, and every name is scraped");
+    }
+}

@@ -1,6 +1,7 @@
 //! Metrics (Prometheus text format), logs, and the HTTP endpoints that serve them.
 
 pub mod http;
+pub mod names;
 pub mod table;
 
 use std::io::IsTerminal;
@@ -37,18 +38,18 @@ impl Metrics {
             }};
         }
         let m = Metrics {
-            events: reg!(IntCounterVec::new(Opts::new("apportion_events_total", "Events read, by kind and outcome (applied, duplicate, rejected)"), &["kind", "outcome"])?),
-            dead_letters: reg!(IntCounterVec::new(Opts::new("apportion_dead_letters_total", "Events sent to the dead-letter topic, by reason"), &["reason"])?),
-            split: reg!(IntCounterVec::new(Opts::new("apportion_experiment_split_total", "Events of an experiment seen on more than one input partition"), exp)?),
-            unmatched_rewards: reg!(IntCounterVec::new(Opts::new("apportion_unmatched_rewards_total", "Rewards refused for an arm with no impressions (dead-lettered unknown-arm)"), exp)?),
+            events: reg!(IntCounterVec::new(Opts::new(names::EVENTS, "Events read, by kind and outcome (applied, duplicate, rejected)"), &["kind", "outcome"])?),
+            dead_letters: reg!(IntCounterVec::new(Opts::new(names::DEAD_LETTERS, "Events sent to the dead-letter topic, by reason"), &["reason"])?),
+            split: reg!(IntCounterVec::new(Opts::new(names::EXPERIMENT_SPLIT, "Events of an experiment seen on more than one input partition"), exp)?),
+            unmatched_rewards: reg!(IntCounterVec::new(Opts::new(names::UNMATCHED_REWARDS, "Rewards refused for an arm with no impressions (dead-lettered unknown-arm)"), exp)?),
             publish_latency: reg!(Histogram::with_opts(
-                HistogramOpts::new("apportion_publish_latency_seconds", "From the first event applied after a publish to the next publish of its experiment")
+                HistogramOpts::new(names::PUBLISH_LATENCY, "From the first event applied after a publish to the next publish of its experiment")
                     .buckets(vec![0.01, 0.05, 0.1, 0.25, 0.5, 1.0, 2.0, 5.0, 10.0, 30.0, 60.0])
             )?),
-            consumer_lag: reg!(IntGaugeVec::new(Opts::new("apportion_consumer_lag_messages", "Messages between the consumer's position and the partition's end"), &["topic", "partition"])?),
-            snapshot_time: reg!(GaugeVec::new(Opts::new("apportion_state_snapshot_timestamp_seconds", "When the partition's last snapshot was written"), &["partition"])?),
-            build_info: reg!(IntGaugeVec::new(Opts::new("apportion_build_info", "Always 1; the version label names the build"), &["version"])?),
-            ready: reg!(IntGauge::new("apportion_ready", "1 when partitions are assigned and their state restored")?),
+            consumer_lag: reg!(IntGaugeVec::new(Opts::new(names::CONSUMER_LAG, "Messages between the consumer's position and the partition's end"), &["topic", "partition"])?),
+            snapshot_time: reg!(GaugeVec::new(Opts::new(names::SNAPSHOT_TIME, "When the partition's last snapshot was written"), &["partition"])?),
+            build_info: reg!(IntGaugeVec::new(Opts::new(names::BUILD_INFO, "Always 1; the version label names the build"), &["version"])?),
+            ready: reg!(IntGauge::new(names::READY, "1 when partitions are assigned and their state restored")?),
             registry,
         };
         m.build_info.with_label_values(&[env!("CARGO_PKG_VERSION")]).set(1);

@@ -1,8 +1,8 @@
 //! The per-experiment and per-arm figures this instance holds, kept as plain numbers and
 //! rendered only when asked for: as Prometheus text on `/metrics` and as JSON on `/experiments`.
 //!
-//! Ten thousand experiments of ten arms make 100 000 arms and, at seven series per arm, some
-//! 700 000 series. Kept as `prometheus` metric objects (each with its own label strings and
+//! Ten thousand experiments of ten arms make 100 000 arms and, at eight series per arm, some
+//! 800 000 series. Kept as `prometheus` metric objects (each with its own label strings and
 //! atomics) they took about 700 MiB; kept here they take about 110 bytes per arm, and the
 //! pipeline touches them once per publish round instead of once per event.
 
@@ -11,19 +11,17 @@ use std::fmt::Write as _;
 
 use serde::ser::{Serialize, SerializeMap, Serializer};
 
-/// One arm's figures, as of the experiment's last publish round.
-#[derive(Clone, Debug, Default, PartialEq)]
+use super::names;
+use crate::core::report::ArmReport;
+
+/// One arm as served, as of the experiment's last publish round: its name, the figures the
+/// core reported, and the weight last published.
+#[derive(Clone, Debug, PartialEq)]
 pub struct ArmRow {
     pub name: String,
-    pub pulls: u64,
-    pub reward: f64,
-    pub mean: f64,
-    pub ci_low: f64,
-    pub ci_high: f64,
+    pub figures: ArmReport,
     /// Last published weight; `None` before the arm's first publish.
     pub weight: Option<f64>,
-    pub undecided: bool,
-    pub last_pull_ms: Option<i64>,
 }
 
 /// One experiment's figures.
@@ -51,28 +49,34 @@ type ArmValue = fn(&ArmRow) -> Option<f64>;
 type ExperimentValue = fn(&ExperimentRow) -> Option<f64>;
 
 /// Per-arm families: name, type, help, value (None: no sample).
-const ARM_FAMILIES: [(&str, &str, &str, ArmValue); 7] = [
-    ("apportion_arm_pulls_total", "counter", "Impressions applied to the arm", |a| Some(a.pulls as f64)),
-    ("apportion_arm_reward_total", "counter", "Reward applied to the arm, in reward units", |a| Some(a.reward)),
-    ("apportion_arm_mean", "gauge", "Estimated mean reward of the arm", |a| Some(a.mean)),
+const ARM_FAMILIES: [(&str, &str, &str, ArmValue); 8] = [
+    (names::ARM_PULLS, "counter", "Impressions applied to the arm", |a| Some(a.figures.pulls as f64)),
+    (names::ARM_REWARD, "counter", "Reward applied to the arm, in reward units", |a| Some(a.figures.reward)),
+    (names::ARM_MEAN, "gauge", "Estimated mean reward of the arm", |a| Some(a.figures.mean)),
     (
-        "apportion_arm_confidence_width",
+        names::ARM_CONFIDENCE_WIDTH,
         "gauge",
         "Width of the two-sided 95% interval on the arm's mean",
-        |a| Some(a.ci_high - a.ci_low),
+        |a| Some(a.figures.width()),
     ),
-    ("apportion_arm_weight_ratio", "gauge", "Traffic weight last published for the arm", |a| a.weight),
+    (names::ARM_WEIGHT, "gauge", "Traffic weight last published for the arm", |a| a.weight),
     (
-        "apportion_arm_undecided",
+        names::ARM_UNDECIDED,
         "gauge",
         "1 when the arm's interval still reaches the leader's lower bound",
-        |a| Some(if a.undecided { 1.0 } else { 0.0 }),
+        |a| Some(if a.figures.undecided { 1.0 } else { 0.0 }),
     ),
     (
-        "apportion_arm_last_pull_timestamp_seconds",
+        names::ARM_LAST_PULL,
         "gauge",
         "Event time of the arm's newest impression",
-        |a| a.last_pull_ms.map(|t| t as f64 / 1000.0),
+        |a| a.figures.last_pull_ms.map(|t| t as f64 / 1000.0),
+    ),
+    (
+        names::ARM_EXCESS_REWARDS,
+        "gauge",
+        "Rewards beyond one per impression under a 0/1 reward model, left out of the policy's success count",
+        |a| Some(a.figures.excess_rewards),
     ),
 ];
 
@@ -82,20 +86,20 @@ pub const FAMILIES: usize = ARM_FAMILIES.len() + EXPERIMENT_FAMILIES.len();
 /// Per-experiment families.
 const EXPERIMENT_FAMILIES: [(&str, &str, &str, ExperimentValue); 4] = [
     (
-        "apportion_experiment_regret_estimate",
+        names::EXPERIMENT_REGRET,
         "gauge",
         "Estimated cumulative pseudo-regret, in reward units",
         |e| Some(e.regret_estimate),
     ),
-    ("apportion_experiment_exploration_ratio", "gauge", "1 minus the leader's weight", |e| e.exploration),
+    (names::EXPERIMENT_EXPLORATION, "gauge", "1 minus the leader's weight", |e| e.exploration),
     (
-        "apportion_weights_version",
+        names::WEIGHTS_VERSION,
         "gauge",
         "Version of the experiment's last published weights",
         |e| (e.version > 0).then_some(e.version as f64),
     ),
     (
-        "apportion_weights_published_timestamp_seconds",
+        names::WEIGHTS_PUBLISHED,
         "gauge",
         "When the experiment's weights were last published",
         |e| e.published_ms.map(|t| t as f64 / 1000.0),
@@ -103,16 +107,6 @@ const EXPERIMENT_FAMILIES: [(&str, &str, &str, ExperimentValue); 4] = [
 ];
 
 impl Table {
-    /// Appends every family in the Prometheus text format (version 0.0.4) to `out`.
-    pub fn write_prometheus(&self, out: &mut String) {
-        for f in 0..FAMILIES {
-            let mut after = None;
-            while let Some(last) = self.write_family(f, after.as_deref(), out, usize::MAX) {
-                after = Some(last);
-            }
-        }
-    }
-
     /// Writes part of family `f` (0..FAMILIES): its header when `after` is `None`, then the
     /// samples of the experiments after `after`, until `out` holds `limit` bytes. Returns the
     /// last experiment written if more remain, `None` once the family is complete. Lets the
@@ -246,15 +240,16 @@ struct ArmJson<'a>(&'a ArmRow);
 
 impl Serialize for ArmJson<'_> {
     fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
-        let a = self.0;
-        let mut m = s.serialize_map(Some(7))?;
-        m.serialize_entry("pulls", &a.pulls)?;
-        m.serialize_entry("reward", &a.reward)?;
-        m.serialize_entry("mean", &a.mean)?;
-        m.serialize_entry("ci_low", &a.ci_low)?;
-        m.serialize_entry("ci_high", &a.ci_high)?;
+        let (a, f) = (self.0, &self.0.figures);
+        let mut m = s.serialize_map(Some(8))?;
+        m.serialize_entry("pulls", &f.pulls)?;
+        m.serialize_entry("reward", &f.reward)?;
+        m.serialize_entry("mean", &f.mean)?;
+        m.serialize_entry("ci_low", &f.ci_low)?;
+        m.serialize_entry("ci_high", &f.ci_high)?;
         m.serialize_entry("weight", &a.weight)?;
-        m.serialize_entry("undecided", &a.undecided)?;
+        m.serialize_entry("undecided", &f.undecided)?;
+        m.serialize_entry("excess_rewards", &f.excess_rewards)?;
         m.end()
     }
 }
@@ -263,17 +258,32 @@ impl Serialize for ArmJson<'_> {
 mod tests {
     use super::*;
 
+    /// Every family in one piece.
+    fn whole_text(t: &Table) -> String {
+        let mut out = String::new();
+        for f in 0..FAMILIES {
+            let mut after = None;
+            while let Some(last) = t.write_family(f, after.as_deref(), &mut out, usize::MAX) {
+                after = Some(last);
+            }
+        }
+        out
+    }
+
     fn table() -> Table {
         let arm = |name: &str, pulls, weight| ArmRow {
             name: name.into(),
-            pulls,
-            reward: 3.0,
-            mean: 0.25,
-            ci_low: 0.1,
-            ci_high: 0.4,
+            figures: ArmReport {
+                pulls,
+                reward: 3.0,
+                mean: 0.25,
+                ci_low: 0.1,
+                ci_high: 0.4,
+                undecided: true,
+                last_pull_ms: Some(1_764_547_200_500),
+                excess_rewards: 0.0,
+            },
             weight,
-            undecided: true,
-            last_pull_ms: Some(1_764_547_200_500),
         };
         let mut t = Table::default();
         t.rows.insert(
@@ -294,8 +304,7 @@ mod tests {
 
     #[test]
     fn prometheus_text_escapes_labels_and_skips_unknown_values() {
-        let mut out = String::new();
-        table().write_prometheus(&mut out);
+        let out = whole_text(&table());
         assert!(out.contains("apportion_arm_pulls_total{experiment=\"a\\\"b\",arm=\"y\\\\z\"} 8\n"), "{out}");
         assert!(out.contains("apportion_arm_weight_ratio{experiment=\"a\\\"b\",arm=\"x\"} 0.4\n"));
         assert!(!out.contains("apportion_arm_weight_ratio{experiment=\"a\\\"b\",arm=\"y"), "no weight published yet: no sample");
@@ -309,11 +318,10 @@ mod tests {
         let mut t = table();
         for i in 0..50 {
             let mut r = t.rows["a\"b"].clone();
-            r.arms[0].pulls = i;
+            r.arms[0].figures.pulls = i;
             t.rows.insert(format!("exp-{i}"), r);
         }
-        let mut whole = String::new();
-        t.write_prometheus(&mut whole);
+        let whole = whole_text(&t);
         let (mut joined, mut pieces) = (String::new(), 0);
         for f in 0..FAMILIES {
             let mut after = None;
@@ -348,5 +356,6 @@ mod tests {
         assert_eq!(v["a\"b"]["leader"], "y\\z");
         assert_eq!(v["a\"b"]["arms"]["x"]["pulls"], 12);
         assert_eq!(v["a\"b"]["arms"]["y\\z"]["weight"], serde_json::Value::Null);
+        assert_eq!(v["a\"b"]["arms"]["x"]["excess_rewards"], 0.0, "the clamped excess is shown, not hidden");
     }
 }

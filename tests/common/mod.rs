@@ -60,7 +60,8 @@ impl Sidecar {
         let addr = cfg.metrics.listen.clone();
         let thread = std::thread::spawn(move || {
             let rt = tokio::runtime::Runtime::new()?;
-            rt.block_on(apportion::cli::serve_sidecar(cfg, stop, false))
+            let served = apportion::telemetry::http::Served::new(std::sync::Arc::new(apportion::telemetry::Metrics::new()?));
+            rt.block_on(apportion::app::run(cfg, served, stop.triggered()))
         });
         Sidecar { addr, shutdown, thread: Some(thread) }
     }
