@@ -93,9 +93,14 @@ pub fn key(topic: &str, partition: i32) -> String {
     format!("{topic}/{partition}")
 }
 
-/// Key of part `index` of a large snapshot written in `slot` (0 or 1).
+/// What the keys of every part of a large snapshot written in `slot` (0 or 1) begin with.
+pub fn part_prefix(topic: &str, partition: i32, slot: u64) -> String {
+    format!("{topic}/{partition}/part/{slot}/")
+}
+
+/// Key of part `index` of a large snapshot written in `slot`.
 pub fn part_key(topic: &str, partition: i32, slot: u64, index: u32) -> String {
-    format!("{topic}/{partition}/part/{slot}/{index}")
+    format!("{}{index}", part_prefix(topic, partition, slot))
 }
 
 /// Stands under the partition's key in place of a snapshot too large for one message: says

@@ -19,6 +19,7 @@ use rdkafka::{ClientContext, Offset, TopicPartitionList};
 
 use super::fence::{group_generation, Fence};
 use super::fetch::{Batch, FetchQueue};
+use super::offset::NextOffset;
 use super::pipeline::Pipeline;
 use crate::clock::now_ms;
 use crate::shutdown::Shutdown;
@@ -63,11 +64,12 @@ impl ConsumerContext for SourceContext {
                 self.fence.assigned();
                 let fetch = self.fetch.lock().ok().and_then(|f| f.clone());
                 let mut take = TopicPartitionList::new();
-                for (p, off) in offsets {
+                for next in offsets {
+                    let p = next.partition;
                     if !fetch.as_ref().is_some_and(|q| q.route(consumer, &self.input_topic, p)) {
                         tracing::error!(partition = p, "cannot route the partition to the fetch queue");
                     }
-                    if let Err(e) = take.add_partition_offset(&self.input_topic, p, off) {
+                    if let Err(e) = take.add_partition_offset(&self.input_topic, p, next.start()) {
                         tracing::error!(partition = p, "cannot set the start offset: {e}");
                     }
                 }
@@ -103,13 +105,13 @@ impl ConsumerContext for SourceContext {
 
 /// Moves the group's committed offsets to the snapshots' (for lag reporting; recovery reads
 /// the snapshot's offset, not this one).
-pub fn commit<C: Consumer<SourceContext>>(consumer: &C, topic: &str, offsets: &[(i32, i64)], mode: CommitMode) {
+pub fn commit<C: Consumer<SourceContext>>(consumer: &C, topic: &str, offsets: &[NextOffset], mode: CommitMode) {
     if offsets.is_empty() {
         return;
     }
     let mut tpl = TopicPartitionList::new();
-    for &(p, o) in offsets {
-        let _ = tpl.add_partition_offset(topic, p, Offset::Offset(o));
+    for o in offsets {
+        let _ = tpl.add_partition_offset(topic, o.partition, Offset::Offset(o.offset));
     }
     if let Err(e) = consumer.commit(&tpl, mode) {
         tracing::warn!("cannot commit offsets: {e}");
@@ -154,7 +156,7 @@ pub fn run(consumer: BaseConsumer<SourceContext>, fetch: Arc<FetchQueue>, pipeli
     let mut batch = Batch::with_capacity(BATCH);
     // Messages `poll` returns: only those of a partition that could not be routed.
     let mut strays = Vec::new();
-    let mut seeks: Vec<(i32, i64)> = Vec::new();
+    let mut seeks: Vec<NextOffset> = Vec::new();
     let mut wait_at_most = Duration::from_millis(100);
     while !shutdown.is_triggered() {
         while strays.len() < BATCH {
@@ -173,11 +175,11 @@ pub fn run(consumer: BaseConsumer<SourceContext>, fetch: Arc<FetchQueue>, pipeli
             let mut apply = |part: i32, offset: i64, key: Option<&[u8]>, payload: Option<&[u8]>| {
                 // Once a partition is to be read again from further back, the rest of what
                 // was fetched for it is stale.
-                if seeks.iter().any(|&(s, _)| s == part) {
+                if seeks.iter().any(|s| s.partition == part) {
                     return;
                 }
                 if let Some(from) = p.on_message(part, offset, key, payload, wall_ms) {
-                    seeks.push((part, from));
+                    seeks.push(from);
                 }
             };
             for m in &strays {
@@ -205,9 +207,9 @@ pub fn run(consumer: BaseConsumer<SourceContext>, fetch: Arc<FetchQueue>, pipeli
         };
         strays.clear();
         batch.clear();
-        for (p, from) in seeks.drain(..) {
-            if let Err(e) = consumer.seek(&topic, p, Offset::Offset(from), Duration::from_secs(10)) {
-                tracing::error!(partition = p, "cannot read the partition again from offset {from}: {e}");
+        for from in seeks.drain(..) {
+            if let Err(e) = consumer.seek(&topic, from.partition, Offset::Offset(from.offset), Duration::from_secs(10)) {
+                tracing::error!(partition = from.partition, "cannot read the partition again from offset {}: {e}", from.offset);
             }
         }
         commit(&consumer, &topic, &offsets, CommitMode::Async);

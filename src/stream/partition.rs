@@ -1,0 +1,315 @@
+//! One input partition's state, and applying events to it: decode, check, deduplicate, apply,
+//! or dead-letter with a reason. A refused event leaves nothing behind but its counts and its
+//! dead letter.
+
+use std::sync::Arc;
+use std::time::Instant;
+
+use prometheus::IntCounter;
+use rdkafka::message::{Header, OwnedHeaders};
+use rdkafka::producer::BaseRecord;
+use rustc_hash::FxHashMap;
+
+use super::counts::{self, Cells, Outcome};
+use super::dedup::DedupWindow;
+use super::producer::{send_with_retry, Sink};
+use super::resume::ResumeCheck;
+use super::settings::Settings;
+use super::snapshot::Counters;
+use crate::core::{Experiment, Observation, Refusal};
+use crate::event::{self, Kind, Reason};
+use crate::telemetry::http::Served;
+use crate::telemetry::Metrics;
+
+pub struct Entry {
+    pub(super) exp: Experiment,
+    /// Impressions applied since the last publish: the batch the next weights are for.
+    pub(super) impressions_since: u64,
+    pub(super) changed: bool,
+    pub(super) first_applied: Option<Instant>,
+    pub(super) last_published: Option<Instant>,
+}
+
+impl Entry {
+    pub fn new(exp: Experiment) -> Entry {
+        Entry { exp, impressions_since: 0, changed: true, first_applied: None, last_published: None }
+    }
+}
+
+pub struct PartitionState {
+    pub(super) next_offset: i64,
+    pub(super) experiments: FxHashMap<String, Entry>,
+    pub(super) dedup: DedupWindow,
+    pub(super) tally: Tally,
+    /// Generation of the last snapshot written (or loaded) of this partition.
+    pub(super) generation: u64,
+    /// The consumer group generation this instance was given the partition in.
+    pub(super) group_generation: i32,
+    /// The part slot (0 or 1) of the newest complete snapshot written in parts; the next one
+    /// goes to the other slot.
+    pub(super) complete_slot: u64,
+    /// Set after taking the partition over at a snapshot's offset, until the first message
+    /// shows that reading really started there (see `resume.rs`).
+    pub(super) resume_check: Option<ResumeCheck>,
+}
+
+/// What a partition counted, apart from its experiments so that both can be borrowed at once.
+#[derive(Default)]
+pub struct Tally {
+    /// Dead letters, split events and unmatched rewards; the event counts live in `events`
+    /// and are written into `counters.events` only when a snapshot is taken.
+    pub(super) counters: Counters,
+    /// Events by kind and outcome, restored values included.
+    pub(super) events: Cells,
+}
+
+impl PartitionState {
+    /// A partition with nothing read yet.
+    pub fn empty(duplicate_window: usize) -> PartitionState {
+        PartitionState {
+            next_offset: 0,
+            experiments: FxHashMap::default(),
+            dedup: DedupWindow::new(duplicate_window),
+            tally: Tally::default(),
+            generation: 0,
+            group_generation: -1,
+            complete_slot: 1,
+            resume_check: None,
+        }
+    }
+
+    pub fn counters_for_snapshot(&self) -> Counters {
+        let mut c = self.tally.counters.clone();
+        c.events = self.tally.events.to_map();
+        c
+    }
+}
+
+/// Every experiment's state, serialised one experiment at a time.
+pub struct States<'a>(pub &'a FxHashMap<String, Entry>);
+
+impl serde::Serialize for States<'_> {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        use serde::ser::SerializeMap;
+        let mut m = s.serialize_map(Some(self.0.len()))?;
+        for (id, e) in self.0 {
+            m.serialize_entry(id, &e.exp.state())?;
+        }
+        m.end()
+    }
+}
+
+/// What applying an event needs besides the partition's own state.
+pub struct Applier {
+    pub(super) s: Arc<Settings>,
+    pub(super) served: Arc<Served>,
+    pub(super) sink: Arc<Sink>,
+    /// `apportion_events_total` handles, one per cell of [`Cells`].
+    pub(super) events: Vec<IntCounter>,
+    /// Events counted since the handles above were last brought up to date: they are, once
+    /// per batch of messages ([`Applier::export_counts`]), not per event, since every
+    /// increment of a shared counter is an atomic write the consumer thread waits for.
+    pub(super) unexported: Cells,
+    /// Remembers the shapes of recent events, which most events repeat.
+    pub(super) decoder: event::Decoder,
+}
+
+/// One input message.
+pub struct Msg<'a> {
+    pub(super) partition: i32,
+    pub(super) offset: i64,
+    pub(super) key: Option<&'a [u8]>,
+    pub(super) bytes: &'a [u8],
+}
+
+/// Which experiments this instance holds, and which partition's copy publishes each.
+#[derive(Default)]
+pub struct Holdings {
+    /// Experiment → the partition whose copy publishes it (the first to see it).
+    pub(super) owners: FxHashMap<String, i32>,
+    /// Experiments held over all partitions (for `limits.experiments`).
+    pub(super) held: usize,
+}
+
+impl Applier {
+    pub fn new(s: Arc<Settings>, served: Arc<Served>, sink: Arc<Sink>) -> Applier {
+        // An event of unknown kind is never applied nor a duplicate: those two cells count
+        // nothing, so they get no series.
+        let events = (0..counts::CELLS)
+            .map(|i| {
+                let (kind, outcome) = Cells::labels(i);
+                if Cells::counts_anything(i) {
+                    served.metrics.events.with_label_values(&[kind, outcome])
+                } else {
+                    IntCounter::new("apportion_unused", "never exported").expect("a valid name")
+                }
+            })
+            .collect();
+        Applier { s, served, sink, events, unexported: Cells::default(), decoder: event::Decoder::default() }
+    }
+
+    /// Brings `apportion_events_total` up to date with the events counted since the last call.
+    /// Called after every batch of messages.
+    pub fn export_counts(&mut self) {
+        for (counter, n) in self.events.iter().zip(self.unexported.0.iter_mut()) {
+            if *n > 0 {
+                counter.inc_by(std::mem::take(n));
+            }
+        }
+    }
+
+    /// Adds counts restored from a snapshot to this process's counters.
+    pub fn count_restored(&self, c: &Counters) {
+        let cells = Cells::from_map(&c.events, |_| {});
+        for (handle, &n) in self.events.iter().zip(cells.0.iter()) {
+            handle.inc_by(n);
+        }
+        let m = self.metrics();
+        for (reason, v) in &c.dead_letters {
+            m.dead_letters.with_label_values(&[reason]).inc_by(*v);
+        }
+        for (exp, v) in &c.split {
+            m.split.with_label_values(&[exp]).inc_by(*v);
+        }
+        for (exp, v) in &c.unmatched_rewards {
+            m.unmatched_rewards.with_label_values(&[exp]).inc_by(*v);
+        }
+    }
+
+    pub fn metrics(&self) -> &Metrics {
+        &self.served.metrics
+    }
+
+    fn count(&mut self, tally: &mut Tally, kind: counts::Kind, outcome: Outcome) {
+        self.unexported.add(kind, outcome);
+        tally.events.add(kind, outcome);
+    }
+
+    fn reject(&mut self, tally: &mut Tally, msg: &Msg<'_>, reason: Reason, kind: counts::Kind) {
+        self.count(tally, kind, Outcome::Rejected);
+        self.metrics().dead_letters.with_label_values(&[reason.code()]).inc();
+        *tally.counters.dead_letters.entry(reason.code().to_string()).or_default() += 1;
+        let source = format!("{}/{}/{}", self.s.input_topic, msg.partition, msg.offset);
+        let headers = OwnedHeaders::new()
+            .insert(Header { key: "apportion-reason", value: Some(reason.code()) })
+            .insert(Header { key: "apportion-source", value: Some(&source) });
+        let mut record: BaseRecord<'_, [u8], [u8]> = BaseRecord::to(&self.s.dead_letter_topic).payload(msg.bytes).headers(headers);
+        if let Some(k) = msg.key {
+            record = record.key(k);
+        }
+        send_with_retry(&self.sink, record);
+    }
+
+    /// A reward for an arm with no impressions: dead-lettered `unknown-arm`, and counted per
+    /// experiment when the experiment is one this instance knows (declared, or held here), so
+    /// that made-up experiment ids cannot create series.
+    fn unmatched(&mut self, tally: &mut Tally, msg: &Msg<'_>, experiment: &str, known: bool) {
+        if known {
+            self.metrics().unmatched_rewards.with_label_values(&[experiment]).inc();
+            *tally.counters.unmatched_rewards.entry(experiment.to_string()).or_default() += 1;
+        }
+        self.reject(tally, msg, Reason::UnknownArm, counts::Kind::Reward);
+    }
+
+    fn note_split(&self, tally: &mut Tally, experiment: &str) {
+        self.metrics().split.with_label_values(&[experiment]).inc();
+        *tally.counters.split.entry(experiment.to_string()).or_default() += 1;
+    }
+
+    /// Records which partition publishes `experiment`: the first to hold it.
+    pub fn note_owner(&self, holdings: &mut Holdings, tally: &mut Tally, partition: i32, experiment: &str) {
+        match holdings.owners.get(experiment) {
+            None => {
+                holdings.owners.insert(experiment.to_string(), partition);
+            }
+            Some(&owner) if owner != partition => {
+                tracing::warn!(
+                    experiment,
+                    partitions = ?[owner, partition],
+                    "experiment seen on more than one input partition; key its events by experiment id. Partition {owner} publishes it"
+                );
+                self.note_split(tally, experiment);
+            }
+            _ => {}
+        }
+    }
+
+    /// Decodes, checks and applies one event, or dead-letters it with its reason.
+    pub fn apply(&mut self, holdings: &mut Holdings, part: &mut PartitionState, msg: &Msg<'_>, now_ms: i64) {
+        let PartitionState { experiments, dedup, tally, .. } = part;
+        let ev = match self.decoder.decode(msg.bytes, self.s.max_event_bytes, now_ms, self.s.max_skew_ms) {
+            Ok(ev) => ev,
+            Err(reason) => return self.reject(tally, msg, reason, counts::Kind::Unknown),
+        };
+        let kind = counts::Kind::from(ev.kind);
+        let id_hash = DedupWindow::hash(&ev.event_id);
+        if dedup.contains_hash(id_hash) {
+            return self.count(tally, kind, Outcome::Duplicate);
+        }
+        // The common case looks the experiment up once.
+        if let Some(entry) = experiments.get_mut(ev.experiment.as_ref()) {
+            if holdings.owners.get(ev.experiment.as_ref()).is_some_and(|&owner| owner != msg.partition) {
+                self.note_split(tally, &ev.experiment);
+            }
+            return self.observe(entry, dedup, tally, msg, &ev, kind, id_hash);
+        }
+        // The experiment is not held on this partition. Only a valid impression creates it;
+        // everything is checked on a new experiment of its own before it joins the state, so a
+        // refused event leaves nothing behind.
+        let Some((spec, arms)) = self.s.spec_of(&ev.experiment) else {
+            return self.reject(tally, msg, Reason::UnknownExperiment, kind);
+        };
+        if ev.kind == Kind::Reward {
+            if !spec.reward.accepts(ev.reward) {
+                return self.reject(tally, msg, Reason::RewardOutOfRange, kind);
+            }
+            let known = self.s.declared.contains_key(ev.experiment.as_ref()) || holdings.owners.contains_key(ev.experiment.as_ref());
+            return self.unmatched(tally, msg, &ev.experiment, known);
+        }
+        if holdings.held >= self.s.max_experiments {
+            return self.reject(tally, msg, Reason::TooManyExperiments, kind);
+        }
+        let mut exp = match Experiment::new(spec, &arms) {
+            Ok(e) => e,
+            Err(e) => {
+                tracing::error!(experiment = %ev.experiment, "cannot create experiment: {e}");
+                return self.reject(tally, msg, Reason::UnknownExperiment, kind);
+            }
+        };
+        if exp.apply(&ev.arm, ev.ts_ms, Observation::Impression { count: ev.count }).is_err() {
+            return self.reject(tally, msg, Reason::TooManyArms, kind);
+        }
+        let mut entry = Entry::new(exp);
+        entry.impressions_since = ev.count;
+        entry.first_applied = Some(Instant::now());
+        experiments.insert(ev.experiment.to_string(), entry);
+        holdings.held += 1;
+        self.note_owner(holdings, tally, msg.partition, &ev.experiment);
+        dedup.insert_new(id_hash);
+        self.count(tally, kind, Outcome::Applied);
+    }
+
+    /// Applies a decoded, new event to its experiment's entry.
+    #[allow(clippy::too_many_arguments)]
+    fn observe(&mut self, entry: &mut Entry, dedup: &mut DedupWindow, tally: &mut Tally, msg: &Msg<'_>, ev: &event::Event<'_>, kind: counts::Kind, id_hash: u64) {
+        let obs = match ev.kind {
+            Kind::Impression => Observation::Impression { count: ev.count },
+            Kind::Reward => Observation::Reward { value: ev.reward },
+        };
+        match entry.exp.apply(&ev.arm, ev.ts_ms, obs) {
+            Ok(_) => {}
+            Err(Refusal::RewardOutOfRange) => return self.reject(tally, msg, Reason::RewardOutOfRange, kind),
+            Err(Refusal::TooManyArms) => return self.reject(tally, msg, Reason::TooManyArms, kind),
+            Err(Refusal::UnknownArm) => return self.unmatched(tally, msg, &ev.experiment, true),
+        }
+        if let Observation::Impression { count } = obs {
+            entry.impressions_since = entry.impressions_since.saturating_add(count);
+        }
+        entry.changed = true;
+        if entry.first_applied.is_none() {
+            entry.first_applied = Some(Instant::now());
+        }
+        dedup.insert_new(id_hash);
+        self.count(tally, kind, Outcome::Applied);
+    }
+}

@@ -1,0 +1,178 @@
+//! Publishing: the rule that says when an experiment's weights go out, the weights message of
+//! the contract, and the rows the HTTP side serves.
+
+use std::collections::BTreeMap;
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use rdkafka::producer::BaseRecord;
+use serde::Serialize;
+
+use super::partition::{Holdings, PartitionState};
+use super::producer::{send_with_retry, Sink};
+use super::settings::Settings;
+use crate::clock::now_ms;
+use crate::core::report::{ArmReport, Report};
+use crate::core::{Allocation, Experiment};
+use crate::telemetry::http::Served;
+use crate::telemetry::table::{ArmRow, ExperimentRow};
+/// What the weights message carries of an arm's figures: the contract's five fields.
+pub struct ArmSummary<'a>(&'a ArmReport);
+
+impl Serialize for ArmSummary<'_> {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        use serde::ser::SerializeMap;
+        let a = self.0;
+        let mut m = s.serialize_map(Some(5))?;
+        m.serialize_entry("pulls", &a.pulls)?;
+        m.serialize_entry("reward", &a.reward)?;
+        m.serialize_entry("mean", &a.mean)?;
+        m.serialize_entry("ci_low", &a.ci_low)?;
+        m.serialize_entry("ci_high", &a.ci_high)?;
+        m.end()
+    }
+}
+
+#[derive(Serialize)]
+pub struct WeightsMessage<'a> {
+    pub experiment: &'a str,
+    pub version: u64,
+    pub policy: &'a str,
+    pub published_at_ms: i64,
+    pub leader: Option<&'a str>,
+    pub weights: BTreeMap<&'a str, f64>,
+    pub arms: BTreeMap<&'a str, ArmSummary<'a>>,
+    pub regret_estimate: f64,
+}
+
+impl<'a> WeightsMessage<'a> {
+    pub fn new(id: &'a str, exp: &'a Experiment, alloc: &'a Allocation, now_ms: i64) -> Self {
+        let names = exp.arm_names();
+        WeightsMessage {
+            experiment: id,
+            version: alloc.version,
+            policy: exp.policy_name(),
+            published_at_ms: now_ms,
+            leader: alloc.report.leader.map(|l| names[l].as_str()),
+            weights: names.iter().map(String::as_str).zip(alloc.weights.iter().copied()).collect(),
+            arms: names
+                .iter()
+                .zip(&alloc.report.arms)
+                .map(|(n, a)| (n.as_str(), ArmSummary(a)))
+                .collect(),
+            regret_estimate: alloc.report.regret_estimate,
+        }
+    }
+}
+
+/// Publishes weights on the interval, and refreshes what the HTTP side serves.
+pub struct Publisher {
+    s: Arc<Settings>,
+    served: Arc<Served>,
+    sink: Arc<Sink>,
+    last_publish: Instant,
+}
+
+impl Publisher {
+    pub fn new(s: Arc<Settings>, served: Arc<Served>, sink: Arc<Sink>) -> Publisher {
+        Publisher { s, served, sink, last_publish: Instant::now() }
+    }
+
+    /// How long until the next publish round is due (zero if it is): the consumer waits for
+    /// messages no longer than this, so that rounds start on time even when input is sparse.
+    pub fn until_due(&self) -> Duration {
+        self.s.publish_interval.saturating_sub(self.last_publish.elapsed())
+    }
+
+    /// Publishes the weights of every experiment that is due (an experiment is published by the
+    /// partition that owns it, see [`Holdings`]), and refreshes the figures the HTTP side serves
+    /// for every experiment that changed. Called between messages. An experiment is due on its
+    /// first publish, on the heartbeat, when an arm joined, or when a weight moved by at least
+    /// `publish.min_change`.
+    pub fn publish_due(&mut self, partitions: &mut BTreeMap<i32, PartitionState>, holdings: &Holdings, force: bool) {
+        let s = &self.s;
+        if !force && self.last_publish.elapsed() < s.publish_interval {
+            return;
+        }
+        self.last_publish = Instant::now();
+        let now = now_ms();
+        let metrics = &self.served.metrics;
+        let mut updates: Vec<(String, ExperimentRow)> = Vec::new();
+        for (&partition, part) in partitions.iter_mut() {
+            for (id, e) in part.experiments.iter_mut() {
+                if holdings.owners.get(id) != Some(&partition) {
+                    continue;
+                }
+                let heartbeat = e.last_published.is_none_or(|t| t.elapsed() >= s.heartbeat);
+                if !(e.changed || heartbeat) {
+                    continue;
+                }
+                let weights = e.exp.weights(now, e.impressions_since.max(1));
+                let moved = e
+                    .exp
+                    .last_weights()
+                    .iter()
+                    .zip(&weights)
+                    .map(|(a, b)| if a.is_finite() { (a - b).abs() } else { f64::INFINITY })
+                    .fold(0.0, f64::max);
+                let new_arm = weights.len() != e.exp.last_weights().len();
+                let publish = e.exp.version() == 0 || heartbeat || new_arm || moved >= s.min_change;
+                let report = if publish {
+                    let version = e.exp.commit(&weights);
+                    let alloc = Allocation { version, weights, report: e.exp.report(now) };
+                    let msg = WeightsMessage::new(id, &e.exp, &alloc, now);
+                    match serde_json::to_vec(&msg) {
+                        Ok(bytes) => {
+                            let record = BaseRecord::to(&s.weights_topic).key(id.as_bytes()).payload(&bytes[..]);
+                            send_with_retry(&self.sink, record);
+                        }
+                        Err(err) => tracing::error!(experiment = %id, "cannot encode weights: {err}"),
+                    }
+                    if let Some(t) = e.first_applied.take() {
+                        metrics.publish_latency.observe(t.elapsed().as_secs_f64());
+                    }
+                    e.last_published = Some(Instant::now());
+                    e.impressions_since = 0;
+                    alloc.report
+                } else {
+                    e.exp.report(now)
+                };
+                e.changed = false;
+                updates.push((id.clone(), row(partition, &e.exp, &report, publish.then_some(now))));
+            }
+        }
+        if updates.is_empty() {
+            return;
+        }
+        let mut table = self.served.table.write().unwrap_or_else(|p| p.into_inner());
+        for (id, mut r) in updates {
+            if r.published_ms.is_none() {
+                // Not published this round: the time of the last publish stands.
+                r.published_ms = table.rows.get(&id).and_then(|old| old.published_ms);
+            }
+            table.rows.insert(id, r);
+        }
+    }
+}
+
+/// What the HTTP side shows of one experiment, from its state and latest report.
+fn row(partition: i32, exp: &Experiment, report: &Report, published_ms: Option<i64>) -> ExperimentRow {
+    let weights = exp.last_weights();
+    let published = exp.version() > 0;
+    ExperimentRow {
+        partition,
+        policy: exp.policy_name(),
+        version: exp.version(),
+        leader: report.leader,
+        regret_estimate: report.regret_estimate,
+        exploration: published.then(|| crate::core::report::exploration_ratio(weights, report.leader)),
+        published_ms,
+        arms: exp
+            .arm_names()
+            .iter()
+            .zip(&report.arms)
+            .enumerate()
+            .map(|(j, (name, a))| ArmRow { name: name.clone(), figures: a.clone(), weight: weights.get(j).copied().filter(|w| w.is_finite()) })
+            .collect(),
+    }
+}
