@@ -4,6 +4,7 @@ use rustc_hash::FxHashMap;
 use serde::{Deserialize, Serialize};
 
 use super::guardrails::Guardrails;
+use super::interval::clamp_sum;
 use super::policy::{ArmInput, Policy, PolicySpec};
 use super::report::{report, Report};
 use super::reward::RewardModel;
@@ -229,7 +230,7 @@ impl Experiment {
             .zip(&self.stats)
             .map(|(name, s)| {
                 let (pulls, reward, _) = s.at(reference, self.spec.half_life_ms);
-                ArmInput { name, pulls, successes: (reward / max).min(pulls) }
+                ArmInput { name, pulls, successes: clamp_sum(pulls, reward, max) / max }
             })
             .collect()
     }

@@ -6,6 +6,7 @@
 //! and the simulator use this module as it is.
 
 pub mod beta;
+pub mod draw;
 pub mod experiment;
 pub mod guardrails;
 pub mod interval;

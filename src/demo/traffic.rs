@@ -20,6 +20,7 @@ use rdkafka::{Offset, TopicPartitionList};
 
 use super::scenario::{Truth, WORLD};
 use crate::clock::now_ms;
+use crate::core::draw::weighted;
 
 pub struct Traffic {
     pub brokers: String,
@@ -183,27 +184,11 @@ fn parse_weights(bytes: &[u8]) -> Result<(String, u64, HashMap<String, f64>), se
 }
 
 fn pick_experiment(rng: &mut StdRng) -> &'static Truth {
-    let mut u: f64 = rng.gen();
-    for t in WORLD {
-        if u < t.traffic {
-            return t;
-        }
-        u -= t.traffic;
-    }
-    &WORLD[WORLD.len() - 1]
+    &WORLD[weighted(WORLD.iter().map(|t| t.traffic), rng.gen()).unwrap_or(WORLD.len() - 1)]
 }
 
 /// Samples an arm from the published weights; uniformly before any weights arrive.
 fn pick_arm(t: &Truth, weights: Option<&HashMap<String, f64>>, rng: &mut StdRng) -> &'static str {
-    if let Some(w) = weights {
-        let mut u: f64 = rng.gen();
-        for (arm, _) in t.arms {
-            let x = w.get(*arm).copied().unwrap_or(0.0);
-            if u < x {
-                return arm;
-            }
-            u -= x;
-        }
-    }
-    t.arms[rng.gen_range(0..t.arms.len())].0
+    let drawn = weights.and_then(|w| weighted(t.arms.iter().map(|(arm, _)| w.get(*arm).copied().unwrap_or(0.0)), rng.gen()));
+    t.arms[drawn.unwrap_or_else(|| rng.gen_range(0..t.arms.len()))].0
 }

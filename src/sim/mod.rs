@@ -276,7 +276,7 @@ fn one_run(spec: &SimSpec, policy: &PolicySpec, cps: &[u64], seed: u64) -> Resul
             if t % spec.batch == 0 {
                 weights = exp.allocate(now, spec.batch).weights;
             }
-            draw(&weights, rng.gen())
+            crate::core::draw::weighted(weights.iter().copied(), rng.gen()).unwrap_or(weights.len().saturating_sub(1))
         };
         let mean = spec.arms[arm];
         let reward = match spec.reward {
@@ -304,13 +304,4 @@ fn one_run(spec: &SimSpec, policy: &PolicySpec, cps: &[u64], seed: u64) -> Resul
     })
 }
 
-/// The arm whose cumulative weight first exceeds `u` ∈ [0, 1).
-fn draw(weights: &[f64], mut u: f64) -> usize {
-    for (i, w) in weights.iter().enumerate() {
-        if u < *w {
-            return i;
-        }
-        u -= w;
-    }
-    weights.len().saturating_sub(1)
-}
+

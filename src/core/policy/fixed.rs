@@ -31,13 +31,6 @@ impl Policy for Fixed {
     fn choose(&self, arms: &[ArmInput], rng: &mut dyn RngCore) -> usize {
         let mut w = vec![0.0; arms.len()];
         self.weights(arms, 1, &mut w);
-        let mut u: f64 = rng.gen();
-        for (i, x) in w.iter().enumerate() {
-            if u < *x {
-                return i;
-            }
-            u -= x;
-        }
-        arms.len().saturating_sub(1)
+        crate::core::draw::weighted(w, rng.gen()).unwrap_or(arms.len().saturating_sub(1))
     }
 }

@@ -13,6 +13,7 @@ use rand_distr::{Beta, Distribution};
 
 use super::{ArmInput, Policy};
 use crate::core::beta::prob_best;
+use crate::core::interval::clamp_sum;
 
 #[derive(Clone, Copy, Debug)]
 pub struct Thompson {
@@ -22,7 +23,7 @@ pub struct Thompson {
 
 impl Thompson {
     fn posterior(&self, arm: &ArmInput) -> (f64, f64) {
-        let s = arm.successes.clamp(0.0, arm.pulls.max(0.0));
+        let s = clamp_sum(arm.pulls, arm.successes, 1.0);
         (self.prior_alpha + s, self.prior_beta + (arm.pulls - s).max(0.0))
     }
 }
