@@ -133,7 +133,7 @@ impl Experiment {
     }
 
     pub fn policy_name(&self) -> &'static str {
-        self.policy.name()
+        self.policy.name().as_str()
     }
 
     pub fn arm_names(&self) -> &[String] {

@@ -4,7 +4,7 @@
 
 use rand::{Rng, RngCore};
 
-use super::{leaders, ArmInput, Policy};
+use super::{leaders, ArmInput, Policy, PolicyName};
 
 #[derive(Clone, Copy, Debug)]
 pub struct EpsilonGreedy {
@@ -46,8 +46,8 @@ fn harmonic(n: f64) -> f64 {
 }
 
 impl Policy for EpsilonGreedy {
-    fn name(&self) -> &'static str {
-        "epsilon-greedy"
+    fn name(&self) -> PolicyName {
+        PolicyName::EpsilonGreedy
     }
 
     fn weights(&self, arms: &[ArmInput], batch: u64, out: &mut [f64]) {

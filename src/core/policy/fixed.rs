@@ -5,7 +5,7 @@ use std::collections::BTreeMap;
 
 use rand::{Rng, RngCore};
 
-use super::{ArmInput, Policy};
+use super::{ArmInput, Policy, PolicyName};
 
 #[derive(Clone, Debug)]
 pub struct Fixed {
@@ -13,8 +13,8 @@ pub struct Fixed {
 }
 
 impl Policy for Fixed {
-    fn name(&self) -> &'static str {
-        "fixed"
+    fn name(&self) -> PolicyName {
+        PolicyName::Fixed
     }
 
     fn weights(&self, arms: &[ArmInput], _batch: u64, out: &mut [f64]) {

@@ -3,7 +3,7 @@
 
 use rand::RngCore;
 
-use super::{index, ArmInput, IndexRule, Policy};
+use super::{index, ArmInput, IndexRule, Policy, PolicyName};
 use crate::core::kl::{kl_ucb_budget, kl_ucb_index, kl_ucb_pulls_at};
 
 #[derive(Clone, Copy, Debug)]
@@ -26,8 +26,8 @@ impl IndexRule for KlUcb {
 }
 
 impl Policy for KlUcb {
-    fn name(&self) -> &'static str {
-        "kl-ucb"
+    fn name(&self) -> PolicyName {
+        PolicyName::KlUcb
     }
 
     fn weights(&self, arms: &[ArmInput], batch: u64, out: &mut [f64]) {

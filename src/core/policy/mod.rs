@@ -48,8 +48,9 @@ impl ArmInput<'_> {
 /// stream republishes the same weights. Randomness is confined to `choose`, which the simulator
 /// uses for one-impression batches.
 pub trait Policy: Send + Sync + fmt::Debug {
-    /// Name used in configuration and in the weights message.
-    fn name(&self) -> &'static str;
+    /// Which policy this is (its name in configuration and in the weights message is
+    /// [`PolicyName::as_str`]).
+    fn name(&self) -> PolicyName;
 
     /// Shares of the next `batch` impressions (≥ 1) per arm, written into `out` (same length as
     /// `arms`), non-negative and summing to 1.

@@ -11,7 +11,7 @@
 use rand::RngCore;
 use rand_distr::{Beta, Distribution};
 
-use super::{ArmInput, Policy};
+use super::{ArmInput, Policy, PolicyName};
 use crate::core::beta::prob_best;
 use crate::core::interval::clamp_sum;
 
@@ -29,8 +29,8 @@ impl Thompson {
 }
 
 impl Policy for Thompson {
-    fn name(&self) -> &'static str {
-        "thompson"
+    fn name(&self) -> PolicyName {
+        PolicyName::Thompson
     }
 
     fn weights(&self, arms: &[ArmInput], _batch: u64, out: &mut [f64]) {

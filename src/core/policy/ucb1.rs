@@ -3,7 +3,7 @@
 
 use rand::RngCore;
 
-use super::{index, ArmInput, IndexRule, Policy};
+use super::{index, ArmInput, IndexRule, Policy, PolicyName};
 
 #[derive(Clone, Copy, Debug)]
 pub struct Ucb1;
@@ -29,8 +29,8 @@ impl IndexRule for Ucb1 {
 }
 
 impl Policy for Ucb1 {
-    fn name(&self) -> &'static str {
-        "ucb1"
+    fn name(&self) -> PolicyName {
+        PolicyName::Ucb1
     }
 
     fn weights(&self, arms: &[ArmInput], batch: u64, out: &mut [f64]) {
