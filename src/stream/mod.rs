@@ -23,7 +23,7 @@ pub mod snapshot;
 pub mod source;
 pub mod topics;
 
-use std::sync::{Arc, Mutex};
+use std::sync::Arc;
 
 use anyhow::{anyhow, Context as _};
 use rdkafka::config::ClientConfig;
@@ -62,21 +62,9 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
         .context("cannot create the state reader")?;
     let state_partitions = topics::partition_count(&state_reader, &cfg.kafka.state_topic)?;
     let sink = producer::create(&cfg)?;
-    let pipeline = Arc::new(Mutex::new(Pipeline::new(
-        settings.clone(),
-        served.clone(),
-        sink,
-        state_reader,
-        state_partitions,
-    )));
-    let ctx = SourceContext {
-        pipeline: pipeline.clone(),
-        metrics: served.metrics.clone(),
-        served: served.clone(),
-        input_topic: settings.input_topic.clone(),
-        fetch: Mutex::new(None),
-        fence: fence::Fence::start(&cfg.kafka.client).context("cannot start the pause watch")?,
-    };
+    let pipeline = Pipeline::new(settings.clone(), served.clone(), sink, state_reader, state_partitions);
+    let fence = fence::Fence::start(&cfg.kafka.client).context("cannot start the pause watch")?;
+    let (ctx, rebalances) = SourceContext::new(served.metrics.clone(), settings.input_topic.clone());
     let mut c = client_config(&cfg);
     c.set("group.id", &cfg.kafka.group_id)
         .set("enable.auto.commit", "false")
@@ -90,16 +78,14 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
     }
     let consumer: BaseConsumer<SourceContext> = c.create_with_context(ctx).context("cannot create the consumer")?;
     let fetch = Arc::new(fetch::FetchQueue::new(&consumer));
-    *consumer.context().fetch.lock().unwrap_or_else(|p| p.into_inner()) = Some(fetch.clone());
     if let Err(e) = consumer.subscribe(&[&settings.input_topic]) {
         // The fetch queue goes before the consumer does, as at the end of `source::run`.
-        consumer.context().fetch.lock().unwrap_or_else(|p| p.into_inner()).take();
         drop(fetch);
         return Err(e).with_context(|| format!("cannot subscribe to {}", settings.input_topic));
     }
     tracing::info!(topic = %settings.input_topic, group = %cfg.kafka.group_id, "consuming");
     let stop = shutdown.clone();
-    tokio::task::spawn_blocking(move || source::run(consumer, fetch, pipeline, stop))
+    tokio::task::spawn_blocking(move || source::run(consumer, rebalances, fetch, fence, served, pipeline, stop))
         .await
         .context("the consumer thread failed")?;
     Ok(())

@@ -1,15 +1,18 @@
 //! The consumer thread: takes the input topic's messages in batches, hands them to the
-//! pipeline, and takes partitions over or hands them back in the rebalance callback.
+//! pipeline, and takes partitions over or hands them back when the group rebalances.
 //!
 //! The messages come from a [`FetchQueue`] that every assigned partition is routed to; the
 //! consumer's own queue, served by `poll` between batches, keeps the rebalances, errors and
-//! statistics. The callback runs inside that `poll`, on this thread, between two batches: on
-//! assignment it loads each partition's snapshot, routes the partition to the fetch queue and
-//! starts reading at the snapshot's offset, whatever the group's committed offset says; on
-//! revocation it snapshots the partition before letting go.
+//! statistics. The rebalance callback runs inside that `poll`, on this thread, and only sends
+//! what happened ([`Rebalance`]) over a channel; the loop, which alone owns the pipeline, acts
+//! on it as soon as that `poll` returns, while librdkafka holds the rebalance open until the
+//! loop's assign or unassign call. On assignment it loads each partition's snapshot, routes the
+//! partition to the fetch queue and starts reading at the snapshot's offset, whatever the
+//! group's committed offset says; on revocation it snapshots the partition before letting go.
 
-use std::sync::{Arc, Mutex, MutexGuard};
-use std::time::Duration;
+use std::sync::mpsc::{self, Receiver, Sender};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
 
 use rdkafka::consumer::{BaseConsumer, CommitMode, Consumer, ConsumerContext, RebalanceProtocol};
 use rdkafka::message::Message;
@@ -26,20 +29,30 @@ use crate::shutdown::Shutdown;
 use crate::telemetry::http::Served;
 use crate::telemetry::Metrics;
 
-pub struct SourceContext {
-    pub pipeline: Arc<Mutex<Pipeline>>,
-    pub metrics: Arc<Metrics>,
-    pub served: Arc<Served>,
-    pub input_topic: String,
-    /// Where assigned partitions are routed: set once the consumer exists, before it
-    /// subscribes; taken out again before the consumer is dropped.
-    pub fetch: Mutex<Option<Arc<FetchQueue>>>,
-    /// Stands before every write round (see `fence.rs`).
-    pub fence: Arc<Fence>,
+/// A rebalance, as the callback reports it to the loop.
+#[derive(Debug)]
+pub enum Rebalance {
+    /// Input partitions given to this member.
+    Assign(Vec<i32>),
+    /// Input partitions taken back; `lost` when the group gave them to another member already
+    /// (the session expired), so that nothing may be written for them.
+    Revoke { partitions: Vec<i32>, lost: bool },
+    /// A rebalance error: everything held is handed back.
+    Failed { error: RDKafkaRespErr, lost: bool },
 }
 
-fn lock(p: &Mutex<Pipeline>) -> MutexGuard<'_, Pipeline> {
-    p.lock().unwrap_or_else(|poisoned| poisoned.into_inner())
+pub struct SourceContext {
+    metrics: Arc<Metrics>,
+    input_topic: String,
+    rebalances: Sender<Rebalance>,
+}
+
+impl SourceContext {
+    /// The context and the end of its channel that the loop reads.
+    pub fn new(metrics: Arc<Metrics>, input_topic: String) -> (SourceContext, Receiver<Rebalance>) {
+        let (rebalances, rx) = mpsc::channel();
+        (SourceContext { metrics, input_topic, rebalances }, rx)
+    }
 }
 
 impl ClientContext for SourceContext {
@@ -56,20 +69,56 @@ impl ClientContext for SourceContext {
 
 impl ConsumerContext for SourceContext {
     fn rebalance(&self, consumer: &BaseConsumer<Self>, err: RDKafkaRespErr, tpl: &mut TopicPartitionList) {
+        let partitions: Vec<i32> = tpl.elements().iter().filter(|e| e.topic() == self.input_topic).map(|e| e.partition()).collect();
+        let lost = consumer.assignment_lost();
+        let event = match err {
+            RDKafkaRespErr::RD_KAFKA_RESP_ERR__ASSIGN_PARTITIONS => Rebalance::Assign(partitions),
+            RDKafkaRespErr::RD_KAFKA_RESP_ERR__REVOKE_PARTITIONS => Rebalance::Revoke { partitions, lost },
+            error => Rebalance::Failed { error, lost },
+        };
+        if let Err(mpsc::SendError(event)) = self.rebalances.send(event) {
+            // The loop has ended and the consumer is closing: the pipeline wrote its last
+            // snapshots already, so whatever is still held is simply let go.
+            tracing::debug!(?event, "rebalance while closing");
+            if !matches!(event, Rebalance::Assign(_)) {
+                let cooperative = matches!(consumer.rebalance_protocol(), RebalanceProtocol::Cooperative);
+                let _ = if cooperative { consumer.incremental_unassign(tpl) } else { consumer.unassign() };
+            }
+        }
+    }
+}
+
+/// The loop's side of the consumer: what a rebalance needs to act on.
+struct Group<'a> {
+    consumer: &'a BaseConsumer<SourceContext>,
+    fetch: &'a FetchQueue,
+    fence: &'a Fence,
+    served: &'a Served,
+    topic: &'a str,
+}
+
+impl Group<'_> {
+    /// Acts on every rebalance the callback has reported.
+    fn serve(&self, rebalances: &Receiver<Rebalance>, pipeline: &mut Pipeline) {
+        while let Ok(r) = rebalances.try_recv() {
+            self.apply(r, pipeline);
+        }
+    }
+
+    fn apply(&self, r: Rebalance, pipeline: &mut Pipeline) {
+        let consumer = self.consumer;
         let cooperative = matches!(consumer.rebalance_protocol(), RebalanceProtocol::Cooperative);
-        let parts: Vec<i32> = tpl.elements().iter().filter(|e| e.topic() == self.input_topic).map(|e| e.partition()).collect();
-        match err {
-            RDKafkaRespErr::RD_KAFKA_RESP_ERR__ASSIGN_PARTITIONS => {
-                let offsets = lock(&self.pipeline).assign(&parts, group_generation(consumer));
+        match r {
+            Rebalance::Assign(parts) => {
+                let offsets = pipeline.assign(&parts, group_generation(consumer));
                 self.fence.assigned();
-                let fetch = self.fetch.lock().ok().and_then(|f| f.clone());
                 let mut take = TopicPartitionList::new();
                 for next in offsets {
                     let p = next.partition;
-                    if !fetch.as_ref().is_some_and(|q| q.route(consumer, &self.input_topic, p)) {
+                    if !self.fetch.route(consumer, self.topic, p) {
                         tracing::error!(partition = p, "cannot route the partition to the fetch queue");
                     }
-                    if let Err(e) = take.add_partition_offset(&self.input_topic, p, next.start()) {
+                    if let Err(e) = take.add_partition_offset(self.topic, p, next.start()) {
                         tracing::error!(partition = p, "cannot set the start offset: {e}");
                     }
                 }
@@ -79,24 +128,31 @@ impl ConsumerContext for SourceContext {
                 }
                 self.served.set_ready(true);
             }
-            RDKafkaRespErr::RD_KAFKA_RESP_ERR__REVOKE_PARTITIONS => {
+            Rebalance::Revoke { partitions, lost } => {
                 if !cooperative {
                     // Everything is handed back until the group settles: not ready meanwhile.
                     self.served.set_ready(false);
                 }
-                let lost = consumer.assignment_lost();
-                let offsets = lock(&self.pipeline).revoke(&parts, lost);
-                commit(consumer, &self.input_topic, &offsets, CommitMode::Sync);
-                let r = if cooperative { consumer.incremental_unassign(tpl) } else { consumer.unassign() };
+                let offsets = pipeline.revoke(&partitions, lost);
+                commit(consumer, self.topic, &offsets, CommitMode::Sync);
+                let r = if cooperative {
+                    let mut give = TopicPartitionList::new();
+                    for p in &partitions {
+                        give.add_partition(self.topic, *p);
+                    }
+                    consumer.incremental_unassign(&give)
+                } else {
+                    consumer.unassign()
+                };
                 if let Err(e) = r {
                     tracing::error!("cannot hand the assignment back: {e}");
                 }
             }
-            other => {
-                tracing::error!("rebalance error: {other:?}");
-                let owned = lock(&self.pipeline).owned_partitions();
-                let offsets = lock(&self.pipeline).revoke(&owned, consumer.assignment_lost());
-                commit(consumer, &self.input_topic, &offsets, CommitMode::Sync);
+            Rebalance::Failed { error, lost } => {
+                tracing::error!("rebalance error: {error:?}");
+                let owned = pipeline.owned_partitions();
+                let offsets = pipeline.revoke(&owned, lost);
+                commit(consumer, self.topic, &offsets, CommitMode::Sync);
                 let _ = consumer.unassign();
             }
         }
@@ -137,16 +193,24 @@ const PREFETCH_AHEAD: usize = 2;
 /// Runs until shutdown: read, apply, publish on the interval, snapshot on the interval. On
 /// shutdown: publish, snapshot, commit, and leave the group.
 ///
-/// Each turn serves the consumer's own queue first (rebalance callbacks, errors, statistics),
-/// then takes a batch from the fetch queue and applies it. A message of a partition handed back
-/// in a callback may still be in the fetch queue or the batch; that is safe: the partition is no
-/// longer in the pipeline, so its messages are passed over (its snapshot, written in the
-/// callback, ends before them, so its next owner reads them), and librdkafka drops most of them
-/// itself (they belong to an outdated fetch). A partition just taken over has no messages before
-/// its assignment.
-pub fn run(consumer: BaseConsumer<SourceContext>, fetch: Arc<FetchQueue>, pipeline: Arc<Mutex<Pipeline>>, shutdown: Shutdown) {
+/// Each turn serves the consumer's own queue first (rebalances, errors, statistics), acting on
+/// each rebalance at once, then takes a batch from the fetch queue and applies it. A message of
+/// a partition handed back may still be in the fetch queue or the batch; that is safe: the
+/// partition is no longer in the pipeline, so its messages are passed over (its snapshot,
+/// written on revocation, ends before them, so its next owner reads them), and librdkafka
+/// drops most of them itself (they belong to an outdated fetch). A partition just taken over
+/// has no messages before its assignment.
+pub fn run(
+    consumer: BaseConsumer<SourceContext>,
+    rebalances: Receiver<Rebalance>,
+    fetch: Arc<FetchQueue>,
+    fence: Arc<Fence>,
+    served: Arc<Served>,
+    mut pipeline: Pipeline,
+    shutdown: Shutdown,
+) {
     let topic = consumer.context().input_topic.clone();
-    let fence = consumer.context().fence.clone();
+    let group = Group { consumer: &consumer, fetch: &fetch, fence: &fence, served: &served, topic: &topic };
     let mut errors_logged = 0u32;
     // Publishing and snapshots are due on a clock, and event times are checked against the wall
     // clock; both are read after every batch and whenever the consumer is idle, not per message.
@@ -160,7 +224,9 @@ pub fn run(consumer: BaseConsumer<SourceContext>, fetch: Arc<FetchQueue>, pipeli
     let mut wait_at_most = Duration::from_millis(100);
     while !shutdown.is_triggered() {
         while strays.len() < BATCH {
-            match consumer.poll(Duration::ZERO) {
+            let polled = consumer.poll(Duration::ZERO);
+            group.serve(&rebalances, &mut pipeline);
+            match polled {
                 Some(Ok(m)) => strays.push(m),
                 Some(Err(e)) => log_error(&mut errors_logged, &e),
                 None => break,
@@ -171,7 +237,7 @@ pub fn run(consumer: BaseConsumer<SourceContext>, fetch: Arc<FetchQueue>, pipeli
             errors_logged = 0;
         }
         let offsets = {
-            let mut p = lock(&pipeline);
+            let p = &mut pipeline;
             let mut apply = |part: i32, offset: i64, key: Option<&[u8]>, payload: Option<&[u8]>| {
                 // Once a partition is to be read again from further back, the rest of what
                 // was fetched for it is stale.
@@ -215,24 +281,30 @@ pub fn run(consumer: BaseConsumer<SourceContext>, fetch: Arc<FetchQueue>, pipeli
         commit(&consumer, &topic, &offsets, CommitMode::Async);
     }
     tracing::info!("stopping: publishing and writing snapshots");
-    let offsets = {
-        let mut p = lock(&pipeline);
-        p.export_counts();
-        p.begin_closing();
-        if fence.may_write(&consumer) {
-            p.publish_due(true);
-            let owned = p.owned_partitions();
-            p.snapshot(&owned, false)
-        } else {
-            Vec::new()
-        }
+    pipeline.export_counts();
+    pipeline.begin_closing();
+    let offsets = if fence.may_write(&consumer) {
+        pipeline.publish_due(true);
+        let owned = pipeline.owned_partitions();
+        pipeline.snapshot(&owned, false)
+    } else {
+        Vec::new()
     };
     commit(&consumer, &topic, &offsets, CommitMode::Sync);
     consumer.unsubscribe();
+    // Leaving the group revokes the assignment through the callback like any rebalance; it is
+    // served here, for at most ten seconds, so that the revocation is written as any other is.
+    let deadline = Instant::now() + Duration::from_secs(10);
+    while !pipeline.owned_partitions().is_empty() && Instant::now() < deadline {
+        let _ = consumer.poll(Duration::from_millis(100));
+        group.serve(&rebalances, &mut pipeline);
+    }
+    // Whatever comes after this (while the consumer closes) the callback lets go itself.
+    drop(rebalances);
+    drop(pipeline);
     // The fetch queue goes before the consumer does (librdkafka's handles before its client).
     drop(batch);
-    if let Ok(mut f) = consumer.context().fetch.lock() {
-        f.take();
-    }
+    drop(strays);
     drop(fetch);
+    drop(consumer);
 }
