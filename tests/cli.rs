@@ -1,16 +1,8 @@
 //! The command line as people meet it: configuration errors, `check`, and the demo.
 
-use std::process::Command;
+mod common;
 
-fn apportion() -> Command {
-    let mut c = Command::new(env!("CARGO_BIN_EXE_apportion"));
-    for (k, _) in std::env::vars() {
-        if k.starts_with("APPORTION_") {
-            c.env_remove(k);
-        }
-    }
-    c
-}
+use common::binary as apportion;
 
 /// A configuration file in a folder of its own, removed with the folder when dropped.
 struct Scratch(std::path::PathBuf);
