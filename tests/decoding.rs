@@ -426,6 +426,7 @@ fn sample_snapshot() -> Snapshot {
         // Written before snapshots carried these: the defaults they read back with.
         group_generation: -1,
         handed_over: false,
+        version_floor: 0,
         experiments: [("clicks".to_string(), clicks.state()), ("watch".to_string(), watch.state())].into_iter().collect(),
         duplicates,
         counters: Counters {

@@ -335,6 +335,7 @@ fn resuming_inside_a_record_batch_applies_the_rest_of_that_batch() {
         written_at_ms: apportion::clock::now_ms(),
         group_generation: -1,
         handed_over: false,
+        version_floor: 0,
         experiments: BTreeMap::new(),
         duplicates: Vec::new(),
         counters: Counters::default(),
@@ -559,3 +560,66 @@ fn a_member_woken_after_losing_its_partitions_writes_nothing_for_them() {
     assert_snapshots_move_forward(&cfg.topic("state"));
 }
 
+/// The highest version of `experiment` on a weights topic's messages.
+fn top_version(msgs: &[rdkafka::message::OwnedMessage], experiment: &str) -> u64 {
+    msgs.iter()
+        .filter_map(|m| serde_json::from_slice::<serde_json::Value>(m.payload()?).ok())
+        .filter(|v| v["experiment"] == experiment)
+        .filter_map(|v| v["version"].as_u64())
+        .max()
+        .unwrap_or(0)
+}
+
+/// An owner killed after publishing but before its next snapshot: one experiment published
+/// before any snapshot of the partition could be written, one created after the last snapshot.
+/// The next owner replays both from the events and must still publish above every version
+/// already on the topic (the contract: versions strictly increase across restarts).
+#[test]
+fn an_owner_killed_between_publishing_and_its_snapshot_leaves_no_version_to_repeat() {
+    if no_broker() {
+        return;
+    }
+    let _one = exclusive();
+    let brokers = brokers();
+    let cfg = ProcConfig::new("first-publish", &brokers, 1);
+    // Snapshots only on demand (the interval is longer than the test); versions every 0.4 s.
+    let sections = "[kafka.client]\n\"session.timeout.ms\" = \"6000\"\n\"heartbeat.interval.ms\" = \"1000\"\n\"max.poll.interval.ms\" = \"10000\"\n\n\
+                    [publish]\ninterval_seconds = 0.2\nheartbeat_seconds = 0.4\n\n[snapshot]\ninterval_seconds = 600\n\n[log]\nlevel = \"warn\"\n";
+    let events = |exp: &str, from: usize| -> Vec<(String, Vec<u8>)> {
+        let t0 = apportion::clock::now_ms() - 1_000;
+        (from..from + 20)
+            .map(|i| {
+                let body = format!(r#"{{"event_id":"{exp}-{i}","kind":"impression","experiment":"{exp}","arm":"arm-{}","ts_ms":{}}}"#, i % 2, t0 + i as i64);
+                (exp.to_string(), body.into_bytes())
+            })
+            .collect()
+    };
+    let weights = cfg.topic("weights");
+    let published = |exp: &str, at_least: u64| {
+        let msgs = read_topic(&weights, Duration::from_secs(60), |m| top_version(m, exp) >= at_least);
+        top_version(&msgs, exp)
+    };
+    let (pa, pb) = (free_port(), free_port());
+    let mut a = SidecarProcess::start(&cfg.bare_toml(pa, sections), pa, &[]);
+    a.assert_ready(Duration::from_secs(60));
+    produce(&cfg.topic("events"), &events("early", 0));
+    assert!(published("early", 3) >= 3, "a publishes early");
+    produce(&cfg.topic("events"), &events("later", 0));
+    assert!(published("later", 3) >= 3, "a publishes later");
+    a.crash();
+    let before = read_whole_topic(&weights, Duration::from_secs(60));
+    let (early_before, later_before) = (top_version(&before, "early"), top_version(&before, "later"));
+
+    let mut b = SidecarProcess::start(&cfg.bare_toml(pb, sections), pb, &[]);
+    b.assert_ready(Duration::from_secs(120));
+    produce(&cfg.topic("events"), &[events("early", 20), events("later", 20)].concat());
+    let version = |exp: &str| metric(&b.get("/metrics").1, "apportion_weights_version", &[("experiment", exp)]).unwrap_or(0.0) as u64;
+    assert!(wait_until(Duration::from_secs(60), || version("early") > 0 && version("later") > 0), "b publishes both");
+    eprintln!(
+        "versions: a published early up to {early_before} and later up to {later_before}; b went on at {} and {}",
+        version("early"),
+        version("later")
+    );
+    assert!(b.stop(), "b leaves cleanly");
+    assert_versions_increase(&weights, 2);
+}

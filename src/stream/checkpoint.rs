@@ -61,6 +61,7 @@ impl Checkpoint {
                 written_at_ms,
                 group_generation: part.group_generation,
                 handed_over,
+                version_floor: part.version_floor,
                 experiments: States(&part.experiments),
                 duplicates: &duplicates,
                 counters: &counters,
@@ -122,6 +123,11 @@ impl Checkpoint {
         for ptr in &pointers {
             if let Some(part) = parts.get_mut(&ptr.partition) {
                 part.complete_slot = ptr.slot;
+            }
+        }
+        for d in &done {
+            if let Some(part) = parts.get_mut(&d.partition) {
+                part.snapshotted = true;
             }
         }
         let secs = written_at_ms as f64 / 1000.0;

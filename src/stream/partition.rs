@@ -51,6 +51,16 @@ pub struct PartitionState {
     /// Set after taking the partition over at a snapshot's offset, until the first message
     /// shows that reading really started there (see `resume.rs`).
     pub(super) resume_check: Option<ResumeCheck>,
+    /// The lowest version an experiment of this partition may publish next: how many publish
+    /// rounds could have run since the snapshot it was restored from (see `restore.rs`). An
+    /// experiment the snapshot does not hold, created again from the events after it, starts
+    /// there too, since an earlier owner may have published it before crashing.
+    pub(super) version_floor: u64,
+    /// A snapshot of this partition has landed (restored from one, or written since): only
+    /// then may its experiments publish, so that a restart always finds one to raise versions
+    /// from. With none, an owner killed after its first publishes would leave the next owner
+    /// starting again at version 1.
+    pub(super) snapshotted: bool,
 }
 
 /// What a partition counted, apart from its experiments so that both can be borrowed at once.
@@ -75,6 +85,8 @@ impl PartitionState {
             group_generation: -1,
             complete_slot: 1,
             resume_check: None,
+            version_floor: 0,
+            snapshotted: false,
         }
     }
 
@@ -236,7 +248,7 @@ impl Applier {
 
     /// Decodes, checks and applies one event, or dead-letters it with its reason.
     pub fn apply(&mut self, holdings: &mut Holdings, part: &mut PartitionState, msg: &Msg<'_>, now_ms: i64) {
-        let PartitionState { experiments, dedup, tally, .. } = part;
+        let PartitionState { experiments, dedup, tally, version_floor, .. } = part;
         let ev = match self.decoder.decode(msg.bytes, self.s.max_event_bytes, now_ms, self.s.max_skew_ms) {
             Ok(ev) => ev,
             Err(reason) => return self.reject(tally, msg, reason, counts::Kind::Unknown),
@@ -279,6 +291,7 @@ impl Applier {
         if exp.apply(&ev.arm, ev.ts_ms, Observation::Impression { count: ev.count }).is_err() {
             return self.reject(tally, msg, Reason::TooManyArms, kind);
         }
+        exp.raise_version(*version_floor);
         let mut entry = Entry::new(exp);
         entry.impressions_since = ev.count;
         entry.first_applied = Some(Instant::now());

@@ -78,8 +78,16 @@ impl Pipeline {
         None
     }
 
-    /// Publishes what is due (everything with `force`); see `publisher.rs`.
+    /// Publishes what is due (everything with `force`); see `publisher.rs`. A partition with
+    /// experiments but no landed snapshot yet gets one first (`PartitionState::snapshotted`).
     pub fn publish_due(&mut self, force: bool) {
+        if force || self.publisher.until_due().is_zero() {
+            let first: Vec<i32> =
+                self.partitions.iter().filter(|(_, part)| !part.snapshotted && !part.experiments.is_empty()).map(|(&p, _)| p).collect();
+            if !first.is_empty() {
+                self.checkpoint.write(&mut self.partitions, &first, false);
+            }
+        }
         self.publisher.publish_due(&mut self.partitions, &self.holdings, force);
     }
 
@@ -145,6 +153,7 @@ impl Pipeline {
                 partition = p,
                 next_offset = part.next_offset,
                 experiments = part.experiments.len(),
+                version_floor = part.version_floor,
                 restore_ms = started.elapsed().as_millis() as u64,
                 "partition assigned"
             );

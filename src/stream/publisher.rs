@@ -99,6 +99,10 @@ impl Publisher {
         let metrics = &self.served.metrics;
         let mut updates: Vec<(String, ExperimentRow)> = Vec::new();
         for (&partition, part) in partitions.iter_mut() {
+            if !part.snapshotted {
+                // Not yet: see `PartitionState::snapshotted` (the pipeline writes one first).
+                continue;
+            }
             for (id, e) in part.experiments.iter_mut() {
                 if holdings.owners.get(id) != Some(&partition) {
                     continue;

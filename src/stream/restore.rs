@@ -55,7 +55,9 @@ impl Restorer {
     /// may have been published after the snapshot was written.
     pub fn partition(&self, p: i32, snap: Snapshot) -> PartitionState {
         // Publishes after the snapshot may have been lost with a crash; versions go up by at
-        // least as many as could have been published since it was written.
+        // least as many as could have been published since it was written: those of the
+        // experiments it holds from their own, those of experiments created after it (replayed
+        // from the events) from the floor it records.
         let since = (now_ms() - snap.written_at_ms).max(0) as f64;
         let lost = (since / self.s.publish_interval.as_millis().max(1) as f64).ceil() as u64 + 1;
         let mut experiments = FxHashMap::default();
@@ -85,6 +87,8 @@ impl Restorer {
             group_generation: snap.group_generation,
             complete_slot: 1,
             resume_check: None,
+            version_floor: snap.version_floor + lost,
+            snapshotted: true,
         }
     }
 
@@ -215,5 +219,53 @@ impl Restorer {
                 None => {}
             }
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::config::Config;
+    use crate::stream::snapshot::{Counters, FORMAT};
+
+    /// A restorer on the default configuration (publishing every second); its state reader
+    /// is never used, and points at a closed loopback port.
+    fn restorer() -> Restorer {
+        let cfg = Config::default();
+        let reader: BaseConsumer = rdkafka::config::ClientConfig::new()
+            .set("bootstrap.servers", "127.0.0.1:9")
+            .set("group.id", "unused")
+            .create()
+            .expect("a consumer (it connects only when used)");
+        Restorer::new(Arc::new(Settings::from_config(&cfg).expect("default settings")), reader, 1)
+    }
+
+    fn snapshot(written_ms_ago: i64, version_floor: u64) -> Snapshot {
+        Snapshot {
+            format: FORMAT,
+            topic: "apportion.events".into(),
+            partition: 0,
+            next_offset: 10,
+            generation: 1,
+            written_at_ms: now_ms() - written_ms_ago,
+            group_generation: 1,
+            handed_over: false,
+            version_floor,
+            experiments: BTreeMap::new(),
+            duplicates: Vec::new(),
+            counters: Counters::default(),
+        }
+    }
+
+    /// An owner restored with floor F published experiments created after its snapshot from F
+    /// on; the next owner, restoring that snapshot, must start above F plus every round since.
+    #[test]
+    fn the_version_floor_carries_over_with_the_rounds_since_the_snapshot() {
+        let r = restorer();
+        let interval_ms = r.s.publish_interval.as_millis() as u64;
+        let part = r.partition(0, snapshot(5 * interval_ms as i64, 40));
+        assert!(part.version_floor >= 40 + 5 + 1, "floor {} for a snapshot with floor 40 written 5 rounds ago", part.version_floor);
+        let fresh = r.partition(0, snapshot(0, 0));
+        assert!(fresh.version_floor >= 1, "at least one round may follow any snapshot");
     }
 }

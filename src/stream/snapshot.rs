@@ -55,6 +55,10 @@ pub struct Snapshot {
     /// group: its counts stay in the writer's counters (see `counts.rs`).
     #[serde(default)]
     pub handed_over: bool,
+    /// The partition's version floor when written: an experiment created after this snapshot
+    /// started there (older writers left it out: 0). See `PartitionState::version_floor`.
+    #[serde(default)]
+    pub version_floor: u64,
     pub experiments: BTreeMap<String, ExperimentState>,
     /// Duplicate window, oldest first (hashes of event ids).
     pub duplicates: Vec<u64>,
@@ -74,6 +78,7 @@ pub struct SnapshotOut<'a, E: Serialize> {
     pub written_at_ms: i64,
     pub group_generation: i32,
     pub handed_over: bool,
+    pub version_floor: u64,
     pub experiments: E,
     pub duplicates: &'a [u64],
     pub counters: &'a Counters,
@@ -242,6 +247,7 @@ mod tests {
             written_at_ms: 1_764_547_200_000,
             group_generation: 3,
             handed_over: true,
+            version_floor: 0,
             experiments: BTreeMap::new(),
             duplicates: vec![1, 2, 3],
             counters: Counters { events: [("impression/applied".to_string(), 9u64)].into_iter().collect(), ..Counters::default() },
@@ -255,6 +261,7 @@ mod tests {
             written_at_ms: 1_764_547_200_000,
             group_generation: 3,
             handed_over: true,
+            version_floor: 0,
             experiments: BTreeMap::<String, ExperimentState>::new(),
             duplicates: &[1, 2, 3],
             counters: &snap.counters,
@@ -274,6 +281,7 @@ mod tests {
                 written_at_ms: 0,
                 group_generation,
                 handed_over: false,
+                version_floor: 0,
                 experiments: BTreeMap::new(),
                 duplicates: Vec::new(),
                 counters: Counters::default(),
@@ -300,6 +308,7 @@ mod tests {
             written_at_ms: 0,
             group_generation: -1,
             handed_over: false,
+            version_floor: 0,
             experiments: BTreeMap::new(),
             duplicates: (0..100).collect(),
             counters: Counters::default(),
