@@ -74,6 +74,21 @@ fn decode(c: &mut Criterion) {
     g.bench_function("mixed-stream", |b| {
         b.iter(|| mixed.iter().filter(|m| decoder.decode(black_box(m.as_bytes()), 16_384, 1_764_547_300_000, 300_000).is_ok()).count())
     });
+    // The same events read by published libraries, with the same checks after reading
+    // (`--features sonic-rs,simd-json`; BENCHMARKS.md, "Decoder").
+    #[cfg(any(feature = "sonic-rs", feature = "simd-json"))]
+    for &library in apportion::event::libraries::Library::ALL {
+        let mut decoder = apportion::event::libraries::LibraryDecoder::default();
+        for m in &mixed {
+            let (ours, theirs) = (apportion::event::decode(m.as_bytes(), 16_384, 1_764_547_300_000, 300_000), decoder.decode(library, m.as_bytes(), 16_384, 1_764_547_300_000, 300_000));
+            assert_eq!(ours, theirs, "{} reads {m} otherwise", library.name());
+        }
+        g.bench_function(format!("mixed-{}", library.name()), |b| {
+            b.iter(|| {
+                mixed.iter().filter(|m| decoder.decode(library, black_box(m.as_bytes()), 16_384, 1_764_547_300_000, 300_000).is_ok()).count()
+            })
+        });
+    }
     g.finish();
 }
 

@@ -140,6 +140,11 @@ struct AllArgs {
     /// `fetch.wait.max.ms=10`. Without it the sidecar runs with its defaults.
     #[arg(long = "sidecar-client", value_name = "KEY=VALUE")]
     sidecar_client: Vec<String>,
+    /// Another build of the sidecar, `NAME=FILE` (repeatable): run in every throughput round
+    /// right after `--apportion`, on the same topic, and compared with it in the summary (e.g.
+    /// builds with another JSON reader).
+    #[arg(long = "also", value_name = "NAME=FILE")]
+    also: Vec<String>,
 }
 
 #[derive(clap::Args)]
@@ -737,7 +742,7 @@ level = "warn"
 // Phase 2: throughput.
 
 struct Round {
-    who: &'static str,
+    who: String,
     round: u32,
     events: u64,
     window_s: f64,
@@ -844,7 +849,7 @@ fn round_bare(env: &Env<'_>, topic: &str, n: u64, round: u32, floor: Floor) -> a
                         drop(g.child.stdin.take());
                         g.stop(Duration::from_secs(10));
                         return Ok(Round {
-                            who: floor.who(),
+                            who: floor.who().to_string(),
                             round,
                             events,
                             window_s: (done_ns.saturating_sub(first)) as f64 / 1e9,
@@ -866,7 +871,7 @@ fn round_bare(env: &Env<'_>, topic: &str, n: u64, round: u32, floor: Floor) -> a
     }
 }
 
-fn round_sidecar(env: &Env<'_>, topic: &str, n: u64, round: u32) -> anyhow::Result<Round> {
+fn round_sidecar(env: &Env<'_>, topic: &str, n: u64, round: u32, binary: &Path, who: String) -> anyhow::Result<Round> {
     let a = env.a;
     let setup = SidecarSetup {
         brokers: &a.brokers,
@@ -877,7 +882,7 @@ fn round_sidecar(env: &Env<'_>, topic: &str, n: u64, round: u32) -> anyhow::Resu
         min_change: 0.001,
         max_experiments: 10_000,
     };
-    let mut sc = Sidecar::start(&a.apportion, &setup)?;
+    let mut sc = Sidecar::start(binary, &setup)?;
     let pid = sc.proc.pid();
     let deadline = Instant::now() + Duration::from_secs(a.timeout);
     let (mut first, mut cpu_first, mut broker_first) = (None, 0.0, None);
@@ -909,7 +914,7 @@ fn round_sidecar(env: &Env<'_>, topic: &str, n: u64, round: u32) -> anyhow::Resu
                 let start = first.unwrap_or(now);
                 sc.stop();
                 return Ok(Round {
-                    who: "b: apportion run",
+                    who,
                     round,
                     events: all,
                     window_s: now.duration_since(start).as_secs_f64(),
@@ -1405,6 +1410,15 @@ fn all(a: AllArgs) -> anyhow::Result<()> {
     if !a.apportion.is_file() {
         bail!("--apportion {}: no such file; build it with cargo build --release", a.apportion.display());
     }
+    let mut also: Vec<(String, PathBuf)> = Vec::new();
+    for spec in &a.also {
+        let (name, file) = spec.split_once('=').ok_or_else(|| anyhow!("--also {spec}: expected NAME=FILE"))?;
+        let file = PathBuf::from(file);
+        if !file.is_file() {
+            bail!("--also {spec}: no such file");
+        }
+        also.push((name.to_string(), file));
+    }
     let env = Env { a: &a, ticks: clock_ticks() };
     let topic = format!("bench-throughput-{}.events", suffix());
     create_topic(&a.brokers, &topic, a.partitions)?;
@@ -1429,9 +1443,15 @@ fn all(a: AllArgs) -> anyhow::Result<()> {
             rounds.push(x);
         }
         progress("throughput", format!("round {r}/{}: b, apportion run", a.rounds));
-        let x = round_sidecar(&env, &topic, a.events, r)?;
+        let x = round_sidecar(&env, &topic, a.events, r, &a.apportion, "b: apportion run".into())?;
         progress("throughput", format!("b{r}: {:.0} events/s, {:.2} CPU s", x.rate(), x.cpu_s));
         rounds.push(x);
+        for (name, file) in &also {
+            progress("throughput", format!("round {r}/{}: b {name}", a.rounds));
+            let x = round_sidecar(&env, &topic, a.events, r, file, format!("b {name}: apportion run"))?;
+            progress("throughput", format!("b {name} {r}: {:.0} events/s, {:.2} CPU s", x.rate(), x.cpu_s));
+            rounds.push(x);
+        }
     }
 
     let latency = if a.skip_latency { None } else { Some(latency_phase(&env)?) };
@@ -1483,9 +1503,9 @@ fn summary(a: &AllArgs, sc: &Scenario, fill_s: f64, rounds: &[Round], lat: Optio
         );
     }
     let med = |who: &str, f: &dyn Fn(&Round) -> f64| median(rounds.iter().filter(|r| r.who.starts_with(who)).map(f).collect());
-    let (ra, rb) = (med("a", &Round::rate), med("b", &Round::rate));
-    let (ca, cb) = (med("a", &Round::cpu_per_million), med("b", &Round::cpu_per_million));
-    let (wa, wb) = (med("a", &Round::cpu_window_per_million), med("b", &Round::cpu_window_per_million));
+    let (ra, rb) = (med("a", &Round::rate), med("b:", &Round::rate));
+    let (ca, cb) = (med("a", &Round::cpu_per_million), med("b:", &Round::cpu_per_million));
+    let (wa, wb) = (med("a", &Round::cpu_window_per_million), med("b:", &Round::cpu_window_per_million));
     let _ = writeln!(s, "\nMedians over rounds:\n");
     let _ = writeln!(s, "| figure | a: bare | b: apportion | b/a | target |");
     let _ = writeln!(s, "|---|---|---|---|---|");
@@ -1496,9 +1516,22 @@ fn summary(a: &AllArgs, sc: &Scenario, fill_s: f64, rounds: &[Round], lat: Optio
         s,
         "| peak RSS MiB | {:.1} | {:.1} | {:.2} | — |",
         med("a", &|r| r.peak_mib),
-        med("b", &|r| r.peak_mib),
-        med("b", &|r| r.peak_mib) / med("a", &|r| r.peak_mib)
+        med("b:", &|r| r.peak_mib),
+        med("b:", &|r| r.peak_mib) / med("a", &|r| r.peak_mib)
     );
+    for (name, _) in a.also.iter().filter_map(|s| s.split_once('=')) {
+        let who = format!("b {name}:");
+        let (cx, wx) = (med(&who, &Round::cpu_per_million), med(&who, &Round::cpu_window_per_million));
+        let _ = writeln!(
+            s,
+            "\nb {name}: {:.0} events/s, {cx:.2} CPU s / M events ({wx:.2} in window); against b: CPU {:.3} ({:.3} in window), \
+             events/s {:.3}.",
+            med(&who, &Round::rate),
+            cx / cb,
+            wx / wb,
+            med(&who, &Round::rate) / rb
+        );
+    }
     if rounds.iter().any(|r| r.who.starts_with('c')) {
         let (cc, wc) = (med("c", &Round::cpu_per_million), med("c", &Round::cpu_window_per_million));
         let _ = writeln!(

@@ -7,6 +7,8 @@ use std::borrow::Cow;
 
 use serde::Deserialize;
 
+#[cfg(any(feature = "sonic-rs", feature = "simd-json"))]
+pub mod libraries;
 mod scan;
 #[doc(hidden)]
 pub use scan::{fast_path_agrees, shape_path_agrees};
@@ -200,10 +202,22 @@ pub struct Decoder {
     shapes: [scan::Shape; 2],
     /// The shape that took the last event.
     last: usize,
+    #[cfg(any(feature = "stream-sonic-rs", feature = "stream-simd-json"))]
+    library: libraries::LibraryDecoder,
 }
+
+/// The library the stream reads events with instead, in a build made to measure it.
+#[cfg(feature = "stream-sonic-rs")]
+const STREAM_LIBRARY: libraries::Library = libraries::Library::SonicRs;
+#[cfg(all(feature = "stream-simd-json", not(feature = "stream-sonic-rs")))]
+const STREAM_LIBRARY: libraries::Library = libraries::Library::SimdJson;
 
 impl Decoder {
     pub fn decode<'a>(&mut self, bytes: &'a [u8], max_bytes: usize, now_ms: i64, max_skew_ms: i64) -> Result<Event<'a>, Reason> {
+        #[cfg(any(feature = "stream-sonic-rs", feature = "stream-simd-json"))]
+        if !bytes.is_empty() {
+            return self.library.decode(STREAM_LIBRARY, bytes, max_bytes, now_ms, max_skew_ms);
+        }
         if bytes.len() > max_bytes {
             return Err(Reason::TooLarge);
         }
