@@ -10,10 +10,6 @@ use std::time::{Duration, Instant};
 use common::*;
 use serde_json::Value;
 
-fn impression(id: &str, exp: &str, arm: &str, ts: i64) -> String {
-    format!(r#"{{"event_id":"{id}","kind":"impression","experiment":"{exp}","arm":"{arm}","ts_ms":{ts}}}"#)
-}
-
 /// One million events against limits of 1 000 experiments and 8 arms per experiment: 900 000
 /// events of 900 000 distinct experiments and 100 000 events of distinct arms of four
 /// experiments, in one stream. Every event beyond a limit is dead-lettered and counted, the

@@ -7,10 +7,6 @@ use std::time::Duration;
 use common::*;
 use rdkafka::message::{Headers, Message};
 
-fn impression(id: &str, exp: &str, arm: &str, ts: i64) -> String {
-    format!(r#"{{"event_id":"{id}","kind":"impression","experiment":"{exp}","arm":"{arm}","ts_ms":{ts}}}"#)
-}
-
 /// Secrets given to librdkafka through `kafka.client`, by file and by environment: none of them
 /// may appear in the logs (JSON, debug level), in `check`, on the HTTP endpoints, or in any
 /// topic the sidecar writes. `sasl.password` is the one secret this build of librdkafka takes

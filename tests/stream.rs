@@ -27,14 +27,6 @@ fn declare(id: &str, arms: &[&str], policy: PolicyName, reward: RewardModel, flo
     }
 }
 
-fn impression(id: &str, exp: &str, arm: &str, ts: i64) -> Vec<u8> {
-    format!(r#"{{"event_id":"{id}","kind":"impression","experiment":"{exp}","arm":"{arm}","ts_ms":{ts}}}"#).into_bytes()
-}
-
-fn reward(id: &str, exp: &str, arm: &str, ts: i64, value: f64) -> Vec<u8> {
-    format!(r#"{{"event_id":"{id}","kind":"reward","experiment":"{exp}","arm":"{arm}","ts_ms":{ts},"reward":{value}}}"#).into_bytes()
-}
-
 /// A seeded stream for one experiment: impressions and, for some, a reward.
 fn stream(exp: &str, arms: &[(&str, f64)], max: f64, n: usize, seed: u64) -> Vec<(String, Vec<u8>)> {
     let mut rng = StdRng::seed_from_u64(seed);
@@ -42,10 +34,10 @@ fn stream(exp: &str, arms: &[(&str, f64)], max: f64, n: usize, seed: u64) -> Vec
     for i in 0..n {
         let (arm, p) = arms[rng.gen_range(0..arms.len())];
         let ts = T0 + i as i64;
-        out.push((exp.to_string(), impression(&format!("{exp}-i{i}"), exp, arm, ts)));
+        out.push((exp.to_string(), impression(&format!("{exp}-i{i}"), exp, arm, ts).into_bytes()));
         if rng.gen::<f64>() < p {
             let v = if max == 1.0 { 1.0 } else { (rng.gen::<f64>() * max).round() };
-            out.push((exp.to_string(), reward(&format!("{exp}-r{i}"), exp, arm, ts + 1, v)));
+            out.push((exp.to_string(), reward(&format!("{exp}-r{i}"), exp, arm, ts + 1, v).into_bytes()));
         }
     }
     out
@@ -160,7 +152,7 @@ fn malformed_messages_are_dead_lettered_with_their_reason_and_the_stream_goes_on
     let mut good = 0u64;
     for (i, (_, b)) in bad.iter().enumerate() {
         for arm in ["a", "b", "c"] {
-            messages.push(("ctr".to_string(), impression(&format!("g{i}{arm}"), "ctr", arm, now)));
+            messages.push(("ctr".to_string(), impression(&format!("g{i}{arm}"), "ctr", arm, now).into_bytes()));
             good += 1;
         }
         messages.push(("ctr".to_string(), b.clone().into_bytes()));
@@ -207,7 +199,7 @@ fn duplicates_are_applied_once_and_counted() {
     let cfg = config("dupes", 2);
     let mut messages = Vec::new();
     for i in 0..50 {
-        let m = impression(&format!("e{i}"), "dup-exp", "a", T0 + i);
+        let m = impression(&format!("e{i}"), "dup-exp", "a", T0 + i).into_bytes();
         messages.push(("dup-exp".to_string(), m.clone()));
         if i % 5 == 0 {
             messages.push(("dup-exp".to_string(), m));
@@ -364,20 +356,20 @@ fn refused_events_leave_no_arm_and_no_experiment_behind() {
     let mut good = |messages: &mut Vec<(i32, &str, Vec<u8>)>, round: usize| {
         for i in 0..300 {
             let arm = ["a", "b", "c"][i % 3];
-            messages.push((1, "m", impression(&format!("i{round}-{i}"), "m", arm, now)));
+            messages.push((1, "m", impression(&format!("i{round}-{i}"), "m", arm, now).into_bytes()));
             if rng.gen::<f64>() < 0.2 {
-                messages.push((1, "m", reward(&format!("r{round}-{i}"), "m", arm, now, 1.0)));
+                messages.push((1, "m", reward(&format!("r{round}-{i}"), "m", arm, now, 1.0).into_bytes()));
                 valid += 1;
             }
             valid += 1;
         }
     };
     good(&mut messages, 0);
-    messages.push((1, "m", reward("bad-1", "m", "ghost", now, 5.0)));
-    messages.push((1, "m", reward("bad-2", "m", "ghost2", now, 1.0)));
-    messages.push((0, "m", reward("bad-3", "m", "a", now, 5.0)));
-    messages.push((0, "m", reward("bad-4", "m", "a", now, 1.0)));
-    messages.push((0, "never-seen", reward("bad-5", "never-seen", "x", now, 1.0)));
+    messages.push((1, "m", reward("bad-1", "m", "ghost", now, 5.0).into_bytes()));
+    messages.push((1, "m", reward("bad-2", "m", "ghost2", now, 1.0).into_bytes()));
+    messages.push((0, "m", reward("bad-3", "m", "a", now, 5.0).into_bytes()));
+    messages.push((0, "m", reward("bad-4", "m", "a", now, 1.0).into_bytes()));
+    messages.push((0, "never-seen", reward("bad-5", "never-seen", "x", now, 1.0).into_bytes()));
     good(&mut messages, 1);
     let sidecar = Sidecar::start(cfg.clone());
     sidecar.wait_ready(Duration::from_secs(60));
@@ -412,7 +404,7 @@ fn refused_events_leave_no_arm_and_no_experiment_behind() {
     // After a restart, m is published by one copy, with its three arms only.
     let sidecar = Sidecar::start(cfg.clone());
     sidecar.wait_ready(Duration::from_secs(60));
-    produce_to(&cfg.kafka.input_topic, &[(1, "m", impression("after-restart", "m", "a", now))]);
+    produce_to(&cfg.kafka.input_topic, &[(1, "m", impression("after-restart", "m", "a", now).into_bytes())]);
     let weights = read_topic(&cfg.kafka.weights_topic, Duration::from_secs(30), |ms| {
         ms.iter().any(|m| serde_json::from_slice::<Value>(m.payload().unwrap_or_default()).is_ok_and(|v| v["arms"]["a"]["pulls"].as_u64() > Some(200)))
             && ms.len() >= 2

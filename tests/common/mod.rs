@@ -1,6 +1,6 @@
-//! The one test harness: the broker's address and plain Kafka clients (`broker`), the sidecar
-//! in this process (`sidecar`) or as a child process of its own binary (`process`), reading a
-//! scrape (`scrape`), and a loopback HTTP client (`http`). Every wait is bounded by a deadline.
+//! The one test harness: the broker's address and plain Kafka clients (`broker`), events in the
+//! contract's JSON (`events`), the sidecar in this process (`sidecar`) or as a child process of
+//! its own binary (`process`), reading a scrape (`scrape`), and a loopback HTTP client (`http`). Every wait is bounded by a deadline.
 //!
 //! Tests that need a broker begin with `if no_broker() { return; }`: without
 //! `TEST_KAFKA_BROKERS` (scripts/test sets it) they say so and pass as skipped.
@@ -9,12 +9,14 @@
 use std::time::{Duration, Instant};
 
 pub mod broker;
+pub mod events;
 pub mod http;
 pub mod process;
 pub mod scrape;
 pub mod sidecar;
 
 pub use broker::*;
+pub use events::*;
 pub use process::*;
 pub use scrape::*;
 pub use sidecar::*;
