@@ -10,7 +10,7 @@ use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
-use crate::core::{Experiment, ExperimentSpec, Guardrails, PolicyName, PolicySpec, RewardModel};
+use crate::core::{Experiment, ExperimentSpec, Bounds, PolicyName, PolicySpec, RewardModel};
 use crate::event::valid_name;
 
 /// Default location of the configuration file.
@@ -59,6 +59,9 @@ pub struct Config {
     pub log: LogConfig,
     pub defaults: Defaults,
     pub experiments: Vec<ExperimentConfig>,
+    /// Keys read under an old name, each with the warning that names the new one.
+    #[serde(skip)]
+    pub renamed: Vec<String>,
 }
 
 #[derive(Clone, Debug, Serialize, Deserialize)]
@@ -193,7 +196,10 @@ pub struct Defaults {
     pub auto_create: bool,
     pub policy: PolicySpec,
     pub reward: RewardModel,
-    pub guardrails: Guardrails,
+    pub bounds: Bounds,
+    /// The old name of `bounds`, read for one release (see [`Config::rename_old_keys`]).
+    #[serde(skip_serializing)]
+    pub guardrails: Option<Bounds>,
     pub half_life_seconds: Option<f64>,
 }
 
@@ -203,7 +209,8 @@ impl Default for Defaults {
             auto_create: true,
             policy: PolicySpec::new(PolicyName::Thompson),
             reward: RewardModel::Bernoulli,
-            guardrails: Guardrails { floor: 0.01, ..Guardrails::default() },
+            bounds: Bounds { floor: 0.01, ..Bounds::default() },
+            guardrails: None,
             half_life_seconds: None,
         }
     }
@@ -218,7 +225,10 @@ pub struct ExperimentConfig {
     pub arms: Vec<String>,
     pub policy: Option<PolicySpec>,
     pub reward: Option<RewardModel>,
-    pub guardrails: Option<Guardrails>,
+    pub bounds: Option<Bounds>,
+    /// The old name of `bounds`, read for one release (see [`Config::rename_old_keys`]).
+    #[serde(default, skip_serializing)]
+    pub guardrails: Option<Bounds>,
     pub half_life_seconds: Option<f64>,
 }
 
@@ -277,8 +287,34 @@ impl Config {
             .into_iter()
             .map(|(k, v)| (k.replace('_', "."), v))
             .collect();
+        cfg.rename_old_keys().map_err(|e| ConfigError(format!("{name}: {e}")))?;
         cfg.validate().map_err(|e| ConfigError(format!("{name}: {e}")))?;
         Ok(cfg)
+    }
+
+    /// Moves settings given under an old key name to the new one, noting a warning for each
+    /// (`check` prints them, `run` logs them); both names at once is an error. `guardrails`
+    /// became `bounds`, since the trade keeps "guardrail" for metrics that must not get worse;
+    /// the old name is read for one release.
+    pub fn rename_old_keys(&mut self) -> Result<(), String> {
+        let warn = |at: &str| format!("{at}.guardrails is the old name of {at}.bounds; it is read for this release only: rename the key");
+        if let Some(old) = self.defaults.guardrails.take() {
+            if self.defaults.bounds != Defaults::default().bounds {
+                return Err("defaults.bounds and defaults.guardrails (its old name) are both given; keep bounds only".into());
+            }
+            self.defaults.bounds = old;
+            self.renamed.push(warn("defaults"));
+        }
+        for (i, e) in self.experiments.iter_mut().enumerate() {
+            if let Some(old) = e.guardrails.take() {
+                if e.bounds.is_some() {
+                    return Err(format!("experiments[{i}].bounds and experiments[{i}].guardrails (its old name) are both given; keep bounds only"));
+                }
+                e.bounds = Some(old);
+                self.renamed.push(warn(&format!("experiments[{i}]")));
+            }
+        }
+        Ok(())
     }
 
     /// Checks every value; the message names the key.
@@ -361,8 +397,8 @@ impl Config {
         }
         crate::telemetry::log_filter(&self.log.level)?;
         let d = &self.defaults;
-        if !d.guardrails.pinned.is_empty() {
-            return Err("defaults.guardrails.pinned: experiments created on first sight have no declared arms to pin".into());
+        if !d.bounds.pinned.is_empty() {
+            return Err("defaults.bounds.pinned: experiments created on first sight have no declared arms to pin".into());
         }
         self.resolve_default_spec().map_err(|e| format!("defaults: {e}"))?;
         let mut seen = std::collections::HashSet::new();
@@ -412,7 +448,7 @@ impl Config {
         let spec = ExperimentSpec {
             policy: d.policy.clone(),
             reward: d.reward,
-            guardrails: d.guardrails.clone(),
+            bounds: d.bounds.clone(),
             half_life_ms: Self::half_life_ms("half_life_seconds", d.half_life_seconds)?,
             max_arms: self.limits.arms_per_experiment,
         };
@@ -422,9 +458,9 @@ impl Config {
 
     fn resolve(&self, e: &ExperimentConfig) -> Result<ResolvedExperiment, String> {
         let d = &self.defaults;
-        let mut guardrails = e.guardrails.clone().unwrap_or_else(|| d.guardrails.clone());
-        if e.guardrails.is_none() {
-            guardrails.pinned.clear();
+        let mut bounds = e.bounds.clone().unwrap_or_else(|| d.bounds.clone());
+        if e.bounds.is_none() {
+            bounds.pinned.clear();
         }
         if e.arms.len() > self.limits.arms_per_experiment {
             return Err(format!(
@@ -439,7 +475,7 @@ impl Config {
             spec: ExperimentSpec {
                 policy: e.policy.clone().unwrap_or_else(|| d.policy.clone()),
                 reward: e.reward.unwrap_or(d.reward),
-                guardrails,
+                bounds,
                 half_life_ms: Self::half_life_ms("half_life_seconds", e.half_life_seconds.or(d.half_life_seconds))?,
                 max_arms: self.limits.arms_per_experiment,
             },
@@ -453,10 +489,11 @@ impl Config {
 
     /// Warnings that do not stop the process (e.g. ε-greedy with c ≤ 5).
     pub fn warnings(&self) -> Vec<String> {
-        let mut w: Vec<String> = self.defaults.policy.warnings().into_iter().map(|m| format!("defaults: {m}")).collect();
+        let mut w: Vec<String> = self.renamed.clone();
+        w.extend(self.defaults.policy.warnings().into_iter().map(|m| format!("defaults: {m}")));
         for r in self.resolved() {
             w.extend(r.spec.policy.warnings().into_iter().map(|m| format!("experiment {}: {m}", r.id)));
-            if r.spec.guardrails.floor == 0.0 && r.spec.policy.name != PolicyName::Fixed {
+            if r.spec.bounds.floor == 0.0 && r.spec.policy.name != PolicyName::Fixed {
                 w.push(format!(
                     "experiment {}: floor = 0 lets the policy starve an arm; set a floor where every arm must keep a share",
                     r.id
@@ -477,7 +514,7 @@ impl Config {
 }
 
 /// The error with its key written as people write it: the config crate joins an array index
-/// and the next key without a dot (`experiments[0]guardrails`).
+/// and the next key without a dot (`experiments[0]bounds`).
 fn dotted(e: config::ConfigError) -> config::ConfigError {
     let fix = |key: Option<String>| key.map(|k| dotted_key(&k));
     match e {
@@ -489,7 +526,7 @@ fn dotted(e: config::ConfigError) -> config::ConfigError {
     }
 }
 
-/// `experiments[0]guardrails` → `experiments[0].guardrails`; `a[0][1]` and `a[0].b` stay.
+/// `experiments[0]bounds` → `experiments[0].bounds`; `a[0][1]` and `a[0].b` stay.
 fn dotted_key(key: &str) -> String {
     let mut out = String::with_capacity(key.len() + 4);
     let mut chars = key.chars().peekable();
@@ -512,7 +549,7 @@ pub fn is_secret(key: &str) -> bool {
 
 impl fmt::Display for ResolvedExperiment {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        let g = &self.spec.guardrails;
+        let g = &self.spec.bounds;
         write!(f, "{}: policy {}", self.id, self.spec.policy)?;
         match self.spec.reward {
             RewardModel::Bernoulli => write!(f, ", rewards 0/1")?,

@@ -41,14 +41,14 @@ fn each_configuration_error_exits_2_naming_the_key() {
         ("[log]\nformat = \"xml\"\n", "log.format"),
         ("[defaults]\npolicy = { name = \"greedy\" }\n", "greedy"),
         ("[defaults]\npolicy = { name = \"ucb1\", c = 2 }\n", "c"),
-        ("[defaults]\nguardrails = { floor = 1.5 }\n", "floor"),
-        ("[[experiments]]\nid = \"x\"\narms = [\"a\", \"b\", \"c\"]\nguardrails = { floor = 0.4 }\n", "floor"),
-        ("[[experiments]]\nid = \"x\"\narms = [\"a\"]\nguardrails = { pinned = { zz = 0.5 } }\n", "pinned.zz"),
+        ("[defaults]\nbounds = { floor = 1.5 }\n", "floor"),
+        ("[[experiments]]\nid = \"x\"\narms = [\"a\", \"b\", \"c\"]\nbounds = { floor = 0.4 }\n", "floor"),
+        ("[[experiments]]\nid = \"x\"\narms = [\"a\"]\nbounds = { pinned = { zz = 0.5 } }\n", "pinned.zz"),
         ("[[experiments]]\nid = \"bad id\"\n", "experiments[0].id"),
         ("[[experiments]]\nid = \"x\"\nreward = { kind = \"bounded\", max = 0 }\n", "max"),
         ("[kafka.client]\n\"group.id\" = \"other\"\n", "group.id"),
         ("[log]\nlevel = \"loud\"\n", "log.level"),
-        ("[[experiments]]\nid = \"x\"\nguardrails = { flor = 0.1 }\n", "`experiments[0].guardrails`"),
+        ("[[experiments]]\nid = \"x\"\nbounds = { flor = 0.1 }\n", "`experiments[0].bounds`"),
         ("[[experiments]]\nid = \"x\"\narms = [\"a\", \"a\"]\n", "experiments[0].arms"),
         (
             "[[experiments]]\nid = \"x\"\narms = [\"a\", \"b\"]\npolicy = { name = \"fixed\", weights = { a = 0.5, zz = 0.5 } }\n",
@@ -280,4 +280,26 @@ fn the_demo_with_an_unreachable_broker_fails_with_one_message_naming_it() {
     assert!(err.contains(&address), "{said}");
     assert!(!String::from_utf8_lossy(&out.stdout).contains("an in-process broker"), "{said}");
     assert_eq!(err.lines().filter(|l| !l.trim().is_empty()).count(), 1, "one message: {said}");
+}
+
+/// `guardrails` was renamed `bounds` (the trade keeps "guardrail" for metrics that must not get
+/// worse): the old key is still read for one release, with a warning naming the new one; both
+/// names at once are refused with status 2.
+#[test]
+fn the_old_key_guardrails_is_read_with_a_warning_naming_bounds() {
+    let old = write_config(
+        "old.toml",
+        "[defaults]\nguardrails = { floor = 0.03 }\n\n[[experiments]]\nid = \"x\"\narms = [\"a\", \"b\"]\nguardrails = { floor = 0.2 }\n",
+    );
+    let out = apportion().args(["check", "--config"]).arg(old.path()).output().unwrap();
+    let text = format!("{}{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
+    assert!(out.status.success(), "{text}");
+    assert!(text.contains("defaults.guardrails is the old name of defaults.bounds"), "{text}");
+    assert!(text.contains("experiments[0].guardrails is the old name of experiments[0].bounds"), "{text}");
+    assert!(text.contains("x: policy") && text.contains("floor 0.2"), "the old key takes effect: {text}");
+    let both = write_config("both.toml", "[[experiments]]\nid = \"x\"\nbounds = { floor = 0.1 }\nguardrails = { floor = 0.2 }\n");
+    let out = apportion().args(["check", "--config"]).arg(both.path()).output().unwrap();
+    let text = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{text}");
+    assert!(text.contains("experiments[0].bounds and experiments[0].guardrails"), "{text}");
 }

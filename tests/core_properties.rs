@@ -5,7 +5,7 @@
 use std::collections::BTreeMap;
 
 use apportion::core::policy::{ArmInput, IndexRule, KlUcb, Ucb1};
-use apportion::core::{Experiment, ExperimentSpec, Guardrails, Observation, PolicyName, PolicySpec, RewardModel};
+use apportion::core::{Experiment, ExperimentSpec, Bounds, Observation, PolicyName, PolicySpec, RewardModel};
 use proptest::prelude::*;
 use rand::rngs::StdRng;
 use rand::SeedableRng;
@@ -69,12 +69,12 @@ fn policy(k: usize) -> impl Strategy<Value = PolicySpec> {
     ]
 }
 
-/// Guardrails that `Guardrails::validate` accepts for `k` declared arms: some pinned arms, a floor
+/// Bounds that `Bounds::validate` accepts for `k` declared arms: some pinned arms, a floor
 /// up to exactly what the free arms can hold, a cap, and a step limit. Two corners where the
 /// bounds cannot hold by construction are not generated, because validate rejects them (see
 /// `impossible_pins_and_caps_are_configuration_errors`): every arm pinned with pins adding up to
 /// less than 1, and a cap with pinned + K·cap < 1.
-fn guardrails(k: usize) -> impl Strategy<Value = Guardrails> {
+fn bounds(k: usize) -> impl Strategy<Value = Bounds> {
     (
         0..k.min(3),
         prop::collection::vec(0.05f64..1.0, 3),
@@ -95,7 +95,7 @@ fn guardrails(k: usize) -> impl Strategy<Value = Guardrails> {
             let floor = floor_frac * rest.max(0.0) / free;
             let lowest_cap = floor.max(rest / free).max(1e-6);
             let cap = cap_frac.map(|f| (lowest_cap + f * (1.0 - lowest_cap)).min(1.0));
-            Guardrails { floor, cap, max_step, pinned }
+            Bounds { floor, cap, max_step, pinned }
         })
 }
 
@@ -103,14 +103,14 @@ fn experiment_setup() -> impl Strategy<Value = (ExperimentSpec, Vec<ArmHistory>,
     (2usize..=7).prop_flat_map(|k| {
         (
             policy(k),
-            guardrails(k),
+            bounds(k),
             prop::collection::vec(arm_history(), k),
             prop::collection::vec(arm_history(), k),
             prop_oneof![Just(1u64), 1u64..50, 50u64..5000],
         )
-            .prop_map(|(policy, guardrails, first, second, batch)| {
+            .prop_map(|(policy, bounds, first, second, batch)| {
                 let mut spec = ExperimentSpec::new(policy, RewardModel::Bernoulli);
-                spec.guardrails = guardrails;
+                spec.bounds = bounds;
                 (spec, first, second, batch)
             })
     })
@@ -118,7 +118,7 @@ fn experiment_setup() -> impl Strategy<Value = (ExperimentSpec, Vec<ArmHistory>,
 
 /// The invariants of SPEC.md, "Weights message": every arm present, each weight ≥ 0, sum 1
 /// within 1e-9, floor, cap and pins hold.
-fn check_invariants(g: &Guardrails, names: &[String], w: &[f64]) -> Result<(), TestCaseError> {
+fn check_invariants(g: &Bounds, names: &[String], w: &[f64]) -> Result<(), TestCaseError> {
     prop_assert_eq!(w.len(), names.len(), "one weight per arm");
     let sum: f64 = w.iter().sum();
     prop_assert!((sum - 1.0).abs() <= EPS, "weights {:?} sum to {}", w, sum);
@@ -141,10 +141,10 @@ proptest! {
     #![proptest_config(ProptestConfig { cases: 256, ..ProptestConfig::default() })]
 
     #[test]
-    fn weights_keep_every_guardrail_for_every_policy((spec, first, second, batch) in experiment_setup()) {
+    fn weights_keep_every_bound_for_every_policy((spec, first, second, batch) in experiment_setup()) {
         let arms = names(first.len());
-        let guard = spec.guardrails.clone();
-        prop_assert!(guard.validate(&arms).is_ok(), "generated guardrails are invalid: {:?}", guard.validate(&arms));
+        let guard = spec.bounds.clone();
+        prop_assert!(guard.validate(&arms).is_ok(), "generated bounds are invalid: {:?}", guard.validate(&arms));
         let mut exp = Experiment::new(spec, &arms).map_err(TestCaseError::fail)?;
         apply(&mut exp, &first, 1_000);
         let before = exp.allocate(1_000, batch).weights;
@@ -381,7 +381,7 @@ proptest! {
     fn a_floor_that_cannot_hold_is_rejected_naming_the_floor(k in 2usize..=20, over in 1e-6f64..1.0) {
         let floor = ((1.0 + over) / k as f64).min(1.0 + over);
         let mut spec = ExperimentSpec::new(PolicySpec::new(PolicyName::Thompson), RewardModel::Bernoulli);
-        spec.guardrails.floor = floor;
+        spec.bounds.floor = floor;
         let err = Experiment::new(spec, &names(k)).err();
         prop_assert!(err.as_deref().is_some_and(|e| e.contains("floor")), "K = {} floor = {}: {:?}", k, floor, err);
     }
@@ -394,7 +394,7 @@ proptest! {
         let total: f64 = pins.iter().sum();
         let arms = names(pins.len() + 1);
         let mut spec = ExperimentSpec::new(PolicySpec::new(PolicyName::Ucb1), RewardModel::Bernoulli);
-        spec.guardrails.pinned = arms.iter().cloned().zip(pins.iter().map(|p| p * (1.0 + over) / total)).collect();
+        spec.bounds.pinned = arms.iter().cloned().zip(pins.iter().map(|p| p * (1.0 + over) / total)).collect();
         let err = Experiment::new(spec, &arms).err();
         prop_assert!(err.as_deref().is_some_and(|e| e.contains("pinned")), "pins {:?}: {:?}", pins, err);
     }
@@ -469,9 +469,9 @@ proptest! {
 #[test]
 fn impossible_pins_and_caps_are_configuration_errors() {
     let arms: Vec<String> = ["a", "b"].iter().map(|s| s.to_string()).collect();
-    let all_pinned = Guardrails { pinned: [("a".to_string(), 0.3), ("b".to_string(), 0.3)].into(), ..Guardrails::default() };
+    let all_pinned = Bounds { pinned: [("a".to_string(), 0.3), ("b".to_string(), 0.3)].into(), ..Bounds::default() };
     assert!(all_pinned.validate(&arms).unwrap_err().contains("pinned"));
-    let low_cap = Guardrails { cap: Some(0.2), ..Guardrails::default() };
+    let low_cap = Bounds { cap: Some(0.2), ..Bounds::default() };
     assert!(low_cap.validate(&arms).unwrap_err().contains("cap"));
 }
 

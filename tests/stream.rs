@@ -7,7 +7,7 @@ use std::collections::{BTreeMap, HashMap};
 use std::time::Duration;
 
 use apportion::config::ExperimentConfig;
-use apportion::core::{Experiment, ExperimentSpec, Guardrails, Observation, PolicyName, PolicySpec, RewardModel};
+use apportion::core::{Experiment, ExperimentSpec, Bounds, Observation, PolicyName, PolicySpec, RewardModel};
 use common::*;
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
@@ -22,7 +22,8 @@ fn declare(id: &str, arms: &[&str], policy: PolicyName, reward: RewardModel, flo
         arms: arms.iter().map(|a| a.to_string()).collect(),
         policy: Some(PolicySpec::new(policy)),
         reward: Some(reward),
-        guardrails: Some(Guardrails { floor, ..Guardrails::default() }),
+        bounds: Some(Bounds { floor, ..Bounds::default() }),
+        guardrails: None,
         half_life_seconds: None,
     }
 }
@@ -223,7 +224,7 @@ fn every_weights_message_holds_the_contract_invariants() {
         return;
     }
     let mut cfg = config("invariants", 3);
-    cfg.defaults.guardrails.floor = 0.05;
+    cfg.defaults.bounds.floor = 0.05;
     let mut messages = Vec::new();
     for (k, exp) in ["inv-a", "inv-b", "inv-c"].iter().enumerate() {
         messages.extend(stream(exp, &[("x", 0.1), ("y", 0.2), ("z", 0.05), ("w", 0.15)], 1.0, 1500, k as u64));

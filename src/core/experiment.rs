@@ -1,9 +1,9 @@
-//! One experiment: its arms' statistics, its policy and guardrails, and its publish state.
+//! One experiment: its arms' statistics, its policy and bounds, and its publish state.
 
 use rustc_hash::FxHashMap;
 use serde::{Deserialize, Serialize};
 
-use super::guardrails::Guardrails;
+use super::bounds::Bounds;
 use super::interval::clamp_sum;
 use super::policy::{ArmInput, Policy, PolicySpec};
 use super::report::{report, Report};
@@ -15,7 +15,7 @@ use super::stats::{reference_ms, ArmStats};
 pub struct ExperimentSpec {
     pub policy: PolicySpec,
     pub reward: RewardModel,
-    pub guardrails: Guardrails,
+    pub bounds: Bounds,
     /// Decay half-life in event time, milliseconds; `None` keeps all history at full weight.
     pub half_life_ms: Option<f64>,
     /// Most arms the experiment may have; arms beyond it are refused.
@@ -24,7 +24,7 @@ pub struct ExperimentSpec {
 
 impl ExperimentSpec {
     pub fn new(policy: PolicySpec, reward: RewardModel) -> Self {
-        ExperimentSpec { policy, reward, guardrails: Guardrails::default(), half_life_ms: None, max_arms: usize::MAX }
+        ExperimentSpec { policy, reward, bounds: Bounds::default(), half_life_ms: None, max_arms: usize::MAX }
     }
 }
 
@@ -85,7 +85,7 @@ impl Experiment {
     /// A new experiment with the declared `arms` (possibly none: arms then join on first sight).
     pub fn new(spec: ExperimentSpec, arms: &[String]) -> Result<Self, String> {
         spec.reward.validate()?;
-        spec.guardrails.validate(arms)?;
+        spec.bounds.validate(arms)?;
         let policy = spec.policy.build()?;
         let mut e = Experiment {
             spec,
@@ -160,7 +160,7 @@ impl Experiment {
 
     /// Most arms this experiment may hold: the configured limit, and what the floor can hold.
     pub fn max_arms(&self) -> usize {
-        let g = &self.spec.guardrails;
+        let g = &self.spec.bounds;
         self.spec.max_arms.min(g.max_free_arms().saturating_add(g.pinned.len()))
     }
 
@@ -170,9 +170,9 @@ impl Experiment {
         if let Some(&j) = self.index.get(name) {
             return Ok(j);
         }
-        let pinned = self.spec.guardrails.pinned.contains_key(name);
-        let free = self.names.iter().filter(|n| !self.spec.guardrails.pinned.contains_key(*n)).count();
-        if self.names.len() >= self.spec.max_arms || (!pinned && free >= self.spec.guardrails.max_free_arms()) {
+        let pinned = self.spec.bounds.pinned.contains_key(name);
+        let free = self.names.iter().filter(|n| !self.spec.bounds.pinned.contains_key(*n)).count();
+        if self.names.len() >= self.spec.max_arms || (!pinned && free >= self.spec.bounds.max_free_arms()) {
             return Err(Refusal::TooManyArms);
         }
         Ok(self.push_arm(name.to_string()))
@@ -245,7 +245,7 @@ impl Experiment {
         self.policy.choose(&self.inputs(now_ms), rng)
     }
 
-    /// Weights for the next `batch` impressions, after the guardrails, without publishing them.
+    /// Weights for the next `batch` impressions, after the bounds, without publishing them.
     pub fn weights(&self, now_ms: i64, batch: u64) -> Vec<f64> {
         let inputs = self.inputs(now_ms);
         let mut raw = vec![0.0; inputs.len()];
@@ -253,7 +253,7 @@ impl Experiment {
         let names: Vec<&str> = self.names.iter().map(String::as_str).collect();
         let mut out = vec![0.0; inputs.len()];
         let previous = (self.version > 0).then_some(self.last_weights.as_slice());
-        self.spec.guardrails.apply(&names, &raw, previous, &mut out);
+        self.spec.bounds.apply(&names, &raw, previous, &mut out);
         out
     }
 

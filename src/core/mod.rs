@@ -1,4 +1,4 @@
-//! The pure core: statistics, intervals, policies, guardrails and derived figures.
+//! The pure core: statistics, intervals, policies, bounds and derived figures.
 //!
 //! No async, no I/O, no clock and no global random generator: event time and `now` are passed
 //! in, and so is a seeded generator where a decision is random. Applying observations is
@@ -8,7 +8,7 @@
 pub mod beta;
 pub mod draw;
 pub mod experiment;
-pub mod guardrails;
+pub mod bounds;
 pub mod interval;
 pub mod kl;
 pub mod policy;
@@ -17,7 +17,7 @@ pub mod reward;
 pub mod stats;
 
 pub use experiment::{Allocation, Experiment, ExperimentSpec, ExperimentState, Observation, Refusal};
-pub use guardrails::Guardrails;
+pub use bounds::Bounds;
 pub use policy::{Policy, PolicyName, PolicySpec};
 pub use report::Report;
 pub use reward::RewardModel;

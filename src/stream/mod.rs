@@ -1,7 +1,7 @@
 //! The streaming half: Kafka in, weights and snapshots out, around the pure core.
 //!
 //! ```text
-//! input topic → source (consume · decode · validate · dedupe) → core (stats → policy → guardrails)
+//! input topic → source (consume · decode · validate · dedupe) → core (stats → policy → bounds)
 //!                     │ rejected → dead-letter topic                    │ weights → weights topic
 //!                     └ offsets + statistics → state topic (snapshots)  └ metrics → /metrics
 //! ```

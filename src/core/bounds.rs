@@ -1,4 +1,4 @@
-//! Guardrails applied after the policy: pins, floor, cap and the largest step per publish.
+//! Bounds applied after the policy: pins, floor, cap and the largest step per publish.
 //!
 //! Pinned arms get their configured weight. The rest of the mass goes to the other arms in
 //! proportion to the policy's weights, each kept within [floor, cap] and within `max_step` of its
@@ -6,7 +6,7 @@
 //! Where the bounds cannot all hold at once at run time (an arm came or went, so the previous
 //! weights no longer fit), the step limit gives way first, then the cap; the floor never does,
 //! because configurations where it cannot hold are rejected up front and extra arms are
-//! refused (see [`Guardrails::max_free_arms`]).
+//! refused (see [`Bounds::max_free_arms`]).
 
 use std::collections::BTreeMap;
 
@@ -14,7 +14,7 @@ use serde::{Deserialize, Serialize};
 
 #[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
-pub struct Guardrails {
+pub struct Bounds {
     /// Minimum weight of every arm that is not pinned.
     #[serde(default)]
     pub floor: f64,
@@ -33,8 +33,8 @@ pub struct Guardrails {
 /// decimal floors such as 0.1 × 10).
 const FLOOR_SLACK: f64 = 1e-9;
 
-impl Guardrails {
-    /// Checks the guardrails against the declared arms (none for experiments created on first
+impl Bounds {
+    /// Checks the bounds against the declared arms (none for experiments created on first
     /// sight). The message names the key, the value and what would be valid.
     pub fn validate(&self, arms: &[String]) -> Result<(), String> {
         let unit = |key: &str, v: f64| {
