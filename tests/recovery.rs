@@ -67,16 +67,7 @@ fn stream_in_background(brokers: String, topic: String, messages: Vec<(String, V
         let per = messages.len().div_ceil(chunks);
         for chunk in messages.chunks(per.max(1)) {
             for (k, v) in chunk {
-                let mut rec = BaseRecord::to(&topic).key(k.as_bytes()).payload(&v[..]);
-                loop {
-                    match p.send(rec) {
-                        Ok(()) => break,
-                        Err((_, r)) => {
-                            rec = r;
-                            p.poll(Duration::from_millis(20));
-                        }
-                    }
-                }
+                send(&p, &topic, k, v);
             }
             p.poll(Duration::ZERO);
             std::thread::sleep(Duration::from_secs_f64(seconds / chunks as f64));

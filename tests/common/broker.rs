@@ -52,19 +52,24 @@ pub fn create_topics(topics: &[&str], partitions: i32) {
 pub fn produce(topic: &str, messages: &[(String, Vec<u8>)]) {
     let p: BaseProducer = ClientConfig::new().set("bootstrap.servers", brokers()).set("linger.ms", "5").create().expect("producer");
     for (k, v) in messages {
-        let mut rec = BaseRecord::to(topic).key(k.as_bytes()).payload(&v[..]);
-        loop {
-            match p.send(rec) {
-                Ok(()) => break,
-                Err((_, r)) => {
-                    rec = r;
-                    p.poll(Duration::from_millis(50));
-                }
-            }
-        }
+        send(&p, topic, k, v);
         p.poll(Duration::ZERO);
     }
     p.flush(Duration::from_secs(30)).expect("all messages delivered");
+}
+
+/// Queues one message, serving the producer while its queue is full.
+pub fn send(p: &BaseProducer, topic: &str, key: &str, value: &[u8]) {
+    let mut rec = BaseRecord::to(topic).key(key.as_bytes()).payload(value);
+    loop {
+        match p.send(rec) {
+            Ok(()) => return,
+            Err((_, r)) => {
+                rec = r;
+                p.poll(Duration::from_millis(20));
+            }
+        }
+    }
 }
 
 #[derive(Default)]
