@@ -215,9 +215,15 @@ const STREAM_LIBRARY: libraries::Library = libraries::Library::SimdJson;
 impl Decoder {
     pub fn decode<'a>(&mut self, bytes: &'a [u8], max_bytes: usize, now_ms: i64, max_skew_ms: i64) -> Result<Event<'a>, Reason> {
         #[cfg(any(feature = "stream-sonic-rs", feature = "stream-simd-json"))]
-        if !bytes.is_empty() {
-            return self.library.decode(STREAM_LIBRARY, bytes, max_bytes, now_ms, max_skew_ms);
-        }
+        return self.library.decode(STREAM_LIBRARY, bytes, max_bytes, now_ms, max_skew_ms);
+        #[cfg(not(any(feature = "stream-sonic-rs", feature = "stream-simd-json")))]
+        self.decode_by_hand(bytes, max_bytes, now_ms, max_skew_ms)
+    }
+
+    /// The hand-written reader: shapes, then the general scan, then serde_json.
+    #[inline(always)]
+    #[cfg_attr(any(feature = "stream-sonic-rs", feature = "stream-simd-json"), allow(dead_code))]
+    fn decode_by_hand<'a>(&mut self, bytes: &'a [u8], max_bytes: usize, now_ms: i64, max_skew_ms: i64) -> Result<Event<'a>, Reason> {
         if bytes.len() > max_bytes {
             return Err(Reason::TooLarge);
         }
