@@ -76,6 +76,16 @@ fn stream_in_background(brokers: String, topic: String, messages: Vec<(String, V
     })
 }
 
+/// Fails, naming a few arms that differ, unless the wait for `want` succeeded (`done`); then
+/// checks the totals exactly.
+fn assert_caught_up(done: bool, last: &Totals, want: &Totals, when: &str) {
+    if !done {
+        let diff: Vec<_> = want.iter().filter(|(k, w)| last.get(*k) != Some(w)).map(|(k, w)| (k, w, last.get(k))).collect();
+        panic!("not caught up{when}: {} arms differ, e.g. {:?}", diff.len(), &diff[..diff.len().min(6)]);
+    }
+    assert_totals(last, want);
+}
+
 fn assert_totals(got: &Totals, want: &Totals) {
     for (k, w) in want {
         let g = got.get(k).copied().unwrap_or_default();
@@ -161,11 +171,7 @@ fn crashes_at_random_moments_lose_nothing_and_count_nothing_twice() {
         produced - (produced - want.values().map(|w| w.0 + w.1 as u64).sum::<u64>() as usize),
         started.elapsed().as_secs_f64()
     );
-    if !done {
-        let diff: Vec<_> = want.iter().filter(|(k, w)| last.get(*k) != Some(w)).map(|(k, w)| (k, w, last.get(k))).collect();
-        panic!("not caught up: {} arms differ, e.g. {:?}", diff.len(), &diff[..diff.len().min(6)]);
-    }
-    assert_totals(&last, &want);
+    assert_caught_up(done, &last, &want, "");
     let scrape = sidecar.get("/metrics").1;
     let applied = applied_events(&scrape);
     let distinct: u64 = want.values().map(|w| w.0 + w.1 as u64).sum();
@@ -229,11 +235,7 @@ fn hand_overs_between_two_instances_keep_totals_exact_and_one_owner_per_experime
         last = sum_totals(&parts);
         want.iter().all(|(k, w)| last.get(k) == Some(w))
     });
-    if !done {
-        let diff: Vec<_> = want.iter().filter(|(k, w)| last.get(*k) != Some(w)).map(|(k, w)| (k, w, last.get(k))).collect();
-        panic!("not caught up: {} arms differ, e.g. {:?}", diff.len(), &diff[..diff.len().min(6)]);
-    }
-    assert_totals(&last, &want);
+    assert_caught_up(done, &last, &want, "");
     assert!(a.stop() && b.stop());
     assert_versions_increase(&cfg.topic("weights"), 12);
 }
@@ -283,11 +285,7 @@ fn a_broker_paused_mid_stream_loses_nothing() {
         last = totals(&sidecar.get("/experiments").1);
         want.iter().all(|(k, w)| last.get(k) == Some(w))
     });
-    if !done {
-        let diff: Vec<_> = want.iter().filter(|(k, w)| last.get(*k) != Some(w)).map(|(k, w)| (k, w, last.get(k))).take(5).collect();
-        panic!("not caught up after the pause: {diff:?}");
-    }
-    assert_totals(&last, &want);
+    assert_caught_up(done, &last, &want, " after the pause");
     assert!(sidecar.stop());
     let _ = broker.kill();
     let _ = broker.wait();
