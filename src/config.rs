@@ -74,6 +74,8 @@ pub struct KafkaConfig {
     pub weights_topic: String,
     pub state_topic: String,
     pub dead_letter_topic: String,
+    /// Experiment definitions changed at run time (`apportion experiment`); compacted.
+    pub control_topic: String,
     /// Create missing topics at start (weights and state compacted).
     pub create_topics: bool,
     /// Partitions of topics created at start.
@@ -92,6 +94,7 @@ impl Default for KafkaConfig {
             weights_topic: "apportion.weights".into(),
             state_topic: "apportion.state".into(),
             dead_letter_topic: "apportion.dead-letter".into(),
+            control_topic: "apportion.control".into(),
             create_topics: true,
             topic_partitions: 6,
             replication_factor: 1,
@@ -201,6 +204,12 @@ pub struct Defaults {
     #[serde(skip_serializing)]
     pub guardrails: Option<Bounds>,
     pub half_life_seconds: Option<f64>,
+    /// Experiments created on first sight are retired after this many seconds without an
+    /// impression (event time against the clock); off when unset.
+    pub idle_retire_seconds: Option<f64>,
+    /// How long a retired experiment's statistics stay in snapshots (and its events are
+    /// refused) before they are dropped.
+    pub retire_grace_seconds: f64,
 }
 
 impl Default for Defaults {
@@ -212,12 +221,14 @@ impl Default for Defaults {
             bounds: Bounds { floor: 0.01, ..Bounds::default() },
             guardrails: None,
             half_life_seconds: None,
+            idle_retire_seconds: None,
+            retire_grace_seconds: 86_400.0,
         }
     }
 }
 
 /// A declared experiment.
-#[derive(Clone, Debug, Serialize, Deserialize)]
+#[derive(Clone, Debug, Default, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct ExperimentConfig {
     pub id: String,
@@ -230,6 +241,8 @@ pub struct ExperimentConfig {
     #[serde(default, skip_serializing)]
     pub guardrails: Option<Bounds>,
     pub half_life_seconds: Option<f64>,
+    /// `false`: impressions of arms not in `arms` are dead-lettered `unknown-arm`.
+    pub accept_new_arms: Option<bool>,
 }
 
 /// An experiment as it will run: declared settings over the defaults.
@@ -329,6 +342,7 @@ impl Config {
             ("kafka.weights_topic", &k.weights_topic),
             ("kafka.state_topic", &k.state_topic),
             ("kafka.dead_letter_topic", &k.dead_letter_topic),
+            ("kafka.control_topic", &k.control_topic),
         ] {
             if v.is_empty() || v.len() > 249 || !v.chars().all(|c| c.is_ascii_alphanumeric() || "._-".contains(c)) {
                 return Err(format!("{key} = {v:?}; a Kafka name of 1–249 characters from [A-Za-z0-9._-]"));
@@ -369,6 +383,12 @@ impl Config {
         positive("publish.interval_seconds", self.publish.interval_seconds)?;
         positive("publish.heartbeat_seconds", self.publish.heartbeat_seconds)?;
         positive("snapshot.interval_seconds", self.snapshot.interval_seconds)?;
+        if let Some(idle) = self.defaults.idle_retire_seconds {
+            positive("defaults.idle_retire_seconds", idle)?;
+        }
+        if !(self.defaults.retire_grace_seconds.is_finite() && self.defaults.retire_grace_seconds >= 0.0) {
+            return Err(format!("defaults.retire_grace_seconds = {}; it must be a number of seconds ≥ 0", self.defaults.retire_grace_seconds));
+        }
         if !(4096..=64 * 1024 * 1024).contains(&self.snapshot.part_bytes) {
             return Err(format!(
                 "snapshot.part_bytes = {}; it must be between 4096 and 67108864, and below the broker's message.max.bytes",
@@ -403,35 +423,43 @@ impl Config {
         self.resolve_default_spec().map_err(|e| format!("defaults: {e}"))?;
         let mut seen = std::collections::HashSet::new();
         for (i, e) in self.experiments.iter().enumerate() {
-            if !valid_name(&e.id) {
-                return Err(format!("experiments[{i}].id = {:?}; 1–64 characters from [A-Za-z0-9._-]", e.id));
-            }
             if !seen.insert(e.id.as_str()) {
                 return Err(format!("experiments[{i}].id = {:?} is declared twice", e.id));
             }
-            let r = self.resolve(e).map_err(|m| format!("experiments[{i}] ({}): {m}", e.id))?;
-            let mut declared = std::collections::HashSet::new();
-            if let Some(a) = e.arms.iter().find(|a| !declared.insert(a.as_str())) {
-                return Err(format!("experiments[{i}].arms ({}): arm {a:?} is declared twice; name each arm once", e.id));
-            }
-            if !r.arms.is_empty() {
-                let key = if e.policy.is_some() { format!("experiments[{i}].policy") } else { "defaults.policy".into() };
-                if let Some(a) = r.spec.policy.weights.keys().find(|a| !r.arms.contains(a)) {
-                    return Err(format!(
-                        "{key}.weights.{a} ({}): no arm {a:?} is declared; declared arms: {}",
-                        e.id,
-                        r.arms.join(", ")
-                    ));
-                }
-            }
-            for a in &r.arms {
-                if !valid_name(a) {
-                    return Err(format!("experiments[{i}] ({}).arms: {a:?}; 1–64 characters from [A-Za-z0-9._-]", e.id));
-                }
-            }
-            Experiment::new(r.spec.clone(), &r.arms).map_err(|m| format!("experiments[{i}] ({}): {m}", e.id))?;
+            self.check_experiment(&format!("experiments[{i}]"), e)?;
         }
         Ok(())
+    }
+
+    /// Checks one experiment's definition over this configuration's defaults and limits, as
+    /// declared at `at` (`experiments[2]`, or `definition` for a control record), and returns
+    /// it as it will run. The file and the control topic share these checks and their
+    /// messages.
+    pub fn check_experiment(&self, at: &str, e: &ExperimentConfig) -> Result<ResolvedExperiment, String> {
+        if !valid_name(&e.id) {
+            return Err(format!("{at}.id = {:?}; 1–64 characters from [A-Za-z0-9._-]", e.id));
+        }
+        let r = self.resolve(e).map_err(|m| format!("{at} ({}): {m}", e.id))?;
+        let mut declared = std::collections::HashSet::new();
+        if let Some(a) = e.arms.iter().find(|a| !declared.insert(a.as_str())) {
+            return Err(format!("{at}.arms ({}): arm {a:?} is declared twice; name each arm once", e.id));
+        }
+        if !r.arms.is_empty() {
+            let key = if e.policy.is_some() { format!("{at}.policy") } else { "defaults.policy".into() };
+            if let Some(a) = r.spec.policy.weights.keys().find(|a| !r.arms.contains(a)) {
+                return Err(format!("{key}.weights.{a} ({}): no arm {a:?} is declared; declared arms: {}", e.id, r.arms.join(", ")));
+            }
+        }
+        for a in &r.arms {
+            if !valid_name(a) {
+                return Err(format!("{at} ({}).arms: {a:?}; 1–64 characters from [A-Za-z0-9._-]", e.id));
+            }
+        }
+        if !r.spec.accept_new_arms && r.arms.is_empty() {
+            return Err(format!("{at}.accept_new_arms ({}) = false needs declared arms; name them in arms", e.id));
+        }
+        Experiment::new(r.spec.clone(), &r.arms).map_err(|m| format!("{at} ({}): {m}", e.id))?;
+        Ok(r)
     }
 
     fn half_life_ms(key: &str, v: Option<f64>) -> Result<Option<f64>, String> {
@@ -451,6 +479,7 @@ impl Config {
             bounds: d.bounds.clone(),
             half_life_ms: Self::half_life_ms("half_life_seconds", d.half_life_seconds)?,
             max_arms: self.limits.arms_per_experiment,
+            accept_new_arms: true,
         };
         Experiment::new(spec.clone(), &[])?;
         Ok(spec)
@@ -478,6 +507,7 @@ impl Config {
                 bounds,
                 half_life_ms: Self::half_life_ms("half_life_seconds", e.half_life_seconds.or(d.half_life_seconds))?,
                 max_arms: self.limits.arms_per_experiment,
+                accept_new_arms: e.accept_new_arms.unwrap_or(true),
             },
         })
     }
@@ -501,6 +531,16 @@ impl Config {
             }
         }
         w
+    }
+
+    /// A Kafka client configuration with the operator's librdkafka properties passed through.
+    pub fn client_config(&self) -> rdkafka::ClientConfig {
+        let mut c = rdkafka::ClientConfig::new();
+        c.set("bootstrap.servers", &self.kafka.brokers);
+        for (k, v) in &self.kafka.client {
+            c.set(k, v);
+        }
+        c
     }
 
     /// librdkafka properties with secrets masked, for printing and logging.
@@ -567,6 +607,9 @@ impl fmt::Display for ResolvedExperiment {
         }
         if let Some(h) = self.spec.half_life_ms {
             write!(f, ", half-life {}s", h / 1000.0)?;
+        }
+        if !self.spec.accept_new_arms {
+            write!(f, ", no new arms")?;
         }
         if self.arms.is_empty() {
             write!(f, ", arms join on first sight")

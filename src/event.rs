@@ -34,10 +34,12 @@ pub enum Reason {
     TooManyExperiments,
     TooManyArms,
     UnknownArm,
+    /// An event of an experiment whose definition in force retired it.
+    RetiredExperiment,
 }
 
 impl Reason {
-    pub const ALL: [Reason; 17] = [
+    pub const ALL: [Reason; 18] = [
         Reason::TooLarge,
         Reason::NotJson,
         Reason::NotObject,
@@ -55,6 +57,7 @@ impl Reason {
         Reason::TooManyExperiments,
         Reason::TooManyArms,
         Reason::UnknownArm,
+        Reason::RetiredExperiment,
     ];
 
     pub fn code(self) -> &'static str {
@@ -76,6 +79,7 @@ impl Reason {
             Reason::TooManyExperiments => "too-many-experiments",
             Reason::TooManyArms => "too-many-arms",
             Reason::UnknownArm => "unknown-arm",
+            Reason::RetiredExperiment => "retired-experiment",
         }
     }
 }

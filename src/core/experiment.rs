@@ -5,6 +5,7 @@ use serde::{Deserialize, Serialize};
 
 use super::bounds::Bounds;
 use super::interval::clamp_sum;
+use super::lifecycle::{Lifecycle, State};
 use super::policy::{ArmInput, Policy, PolicySpec};
 use super::report::{report, Report};
 use super::reward::RewardModel;
@@ -20,11 +21,19 @@ pub struct ExperimentSpec {
     pub half_life_ms: Option<f64>,
     /// Most arms the experiment may have; arms beyond it are refused.
     pub max_arms: usize,
+    /// Whether an impression of an arm the definition does not name adds it (`true`) or is
+    /// refused as `unknown-arm`. Only meaningful with declared arms.
+    #[serde(default = "accept_by_default")]
+    pub accept_new_arms: bool,
+}
+
+fn accept_by_default() -> bool {
+    true
 }
 
 impl ExperimentSpec {
     pub fn new(policy: PolicySpec, reward: RewardModel) -> Self {
-        ExperimentSpec { policy, reward, bounds: Bounds::default(), half_life_ms: None, max_arms: usize::MAX }
+        ExperimentSpec { policy, reward, bounds: Bounds::default(), half_life_ms: None, max_arms: usize::MAX, accept_new_arms: true }
     }
 }
 
@@ -48,6 +57,12 @@ pub enum Refusal {
     /// reward is not evidence that the arm is being shown.
     #[error("reward for an arm with no impressions")]
     UnknownArm,
+    /// An impression of an arm the definition does not name, with `accept_new_arms = false`.
+    #[error("the definition does not name this arm and accepts no new ones")]
+    UndeclaredArm,
+    /// An event of a retired experiment.
+    #[error("the experiment is retired")]
+    Retired,
 }
 
 /// Weights for one publish, with the figures reported beside them.
@@ -67,6 +82,13 @@ pub struct ExperimentState {
     pub version: u64,
     /// Weights of the last publish, per arm (`None` for arms that joined since).
     pub last_weights: Vec<Option<f64>>,
+    /// The definition's state and revision when the snapshot was taken (older writers left
+    /// it out: learning at revision 0).
+    #[serde(default)]
+    pub lifecycle: Lifecycle,
+    /// Arms a definition took out: their statistics stay, they get no weight.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub removed: Vec<String>,
 }
 
 #[derive(Debug)]
@@ -79,6 +101,11 @@ pub struct Experiment {
     version: u64,
     /// NaN for arms without a previous weight.
     last_weights: Vec<f64>,
+    lifecycle: Lifecycle,
+    /// Per arm: taken out by a definition (no weight, statistics kept).
+    removed: Vec<bool>,
+    /// The arms the definition names (empty: arms join on first sight).
+    declared: Vec<String>,
 }
 
 impl Experiment {
@@ -95,16 +122,23 @@ impl Experiment {
             index: FxHashMap::default(),
             version: 0,
             last_weights: Vec::new(),
+            lifecycle: Lifecycle::default(),
+            removed: Vec::new(),
+            declared: Vec::new(),
         };
         for a in arms {
             e.arm_or_add(a).map_err(|r| format!("arm {a:?}: {r}"))?;
         }
+        e.declared = arms.to_vec();
         Ok(e)
     }
 
-    /// Restores an experiment from a snapshot under the current spec.
+    /// Restores an experiment from a snapshot under the current spec; the lifecycle and the
+    /// arms taken out come from the snapshot (a newer definition is applied afterwards with
+    /// [`Experiment::redefine`]).
     pub fn restore(spec: ExperimentSpec, declared: &[String], state: ExperimentState) -> Result<Self, String> {
         let mut e = Experiment::new(spec, declared)?;
+        e.lifecycle = state.lifecycle;
         for (name, stats) in state.arms {
             let j = match e.index.get(&name) {
                 Some(&j) => j,
@@ -117,7 +151,60 @@ impl Experiment {
         for (j, w) in state.last_weights.into_iter().enumerate().take(e.names.len()) {
             e.last_weights[j] = w.unwrap_or(f64::NAN);
         }
+        for name in &state.removed {
+            if let Some(&j) = e.index.get(name) {
+                e.removed[j] = true;
+            }
+        }
         Ok(e)
+    }
+
+    /// Runs the experiment under a newer definition from now on: its spec, its arms and its
+    /// lifecycle, changed at `changed_at_ms`. Statistics and the weights version stay. Arms it
+    /// does not name (when it names any) are taken out of the weights at the next publish,
+    /// with no step limit holding them back; arms it names that have no statistics yet join.
+    /// The definition has passed the same checks as [`Experiment::new`]'s.
+    pub fn redefine(&mut self, spec: ExperimentSpec, arms: &[String], lifecycle: Lifecycle, changed_at_ms: i64) -> Result<(), String> {
+        spec.reward.validate()?;
+        spec.bounds.validate(arms)?;
+        self.policy = spec.policy.build()?;
+        self.spec = spec;
+        for a in arms {
+            if !self.index.contains_key(a) {
+                self.push_arm(a.clone());
+            }
+        }
+        for (j, name) in self.names.iter().enumerate() {
+            self.removed[j] = !arms.is_empty() && !arms.contains(name);
+        }
+        self.declared = arms.to_vec();
+        self.lifecycle = self.lifecycle.followed_by(lifecycle, changed_at_ms);
+        Ok(())
+    }
+
+    /// Retires the experiment of its own accord (idle for too long) at `now_ms`.
+    pub fn retire(&mut self, now_ms: i64) {
+        let next = Lifecycle { state: State::Retired, ..self.lifecycle.clone() };
+        self.lifecycle = self.lifecycle.followed_by(next, now_ms);
+    }
+
+    /// Starts a new experiment in the lifecycle of its definition.
+    pub fn start_in(&mut self, lifecycle: Lifecycle) {
+        self.lifecycle = lifecycle;
+    }
+
+    pub fn lifecycle(&self) -> &Lifecycle {
+        &self.lifecycle
+    }
+
+    /// Whether arm `j` gets weight: not taken out by a definition.
+    pub fn is_active(&self, j: usize) -> bool {
+        !self.removed[j]
+    }
+
+    /// Event time of the newest impression of any arm.
+    pub fn last_pull_ms(&self) -> Option<i64> {
+        self.stats.iter().filter_map(|s| s.last_pull_ms).max()
     }
 
     pub fn state(&self) -> ExperimentState {
@@ -125,6 +212,8 @@ impl Experiment {
             arms: self.names.iter().cloned().zip(self.stats.iter().cloned()).collect(),
             version: self.version,
             last_weights: self.last_weights.iter().map(|w| w.is_finite().then_some(*w)).collect(),
+            lifecycle: self.lifecycle.clone(),
+            removed: self.names.iter().zip(&self.removed).filter(|(_, r)| **r).map(|(n, _)| n.clone()).collect(),
         }
     }
 
@@ -170,6 +259,9 @@ impl Experiment {
         if let Some(&j) = self.index.get(name) {
             return Ok(j);
         }
+        if !self.spec.accept_new_arms && !self.declared.is_empty() {
+            return Err(Refusal::UndeclaredArm);
+        }
         let pinned = self.spec.bounds.pinned.contains_key(name);
         let free = self.names.iter().filter(|n| !self.spec.bounds.pinned.contains_key(*n)).count();
         if self.names.len() >= self.spec.max_arms || (!pinned && free >= self.spec.bounds.max_free_arms()) {
@@ -184,6 +276,7 @@ impl Experiment {
         self.names.push(name);
         self.stats.push(ArmStats::default());
         self.last_weights.push(f64::NAN);
+        self.removed.push(false);
         j
     }
 
@@ -191,7 +284,15 @@ impl Experiment {
     /// and only once nothing else can refuse it: a refused observation leaves the experiment
     /// exactly as it was. Returns the arm's index. O(1).
     pub fn apply(&mut self, name: &str, ts_ms: i64, obs: Observation) -> Result<usize, Refusal> {
+        if self.lifecycle.state == State::Retired {
+            return Err(Refusal::Retired);
+        }
         let arm = match (self.index.get(name), obs) {
+            // An arm taken out by a definition that accepts no new arms is refused like one
+            // it never named; its rewards still count, for impressions served before.
+            (Some(&j), Observation::Impression { .. }) if self.removed[j] && !self.spec.accept_new_arms => {
+                return Err(Refusal::UndeclaredArm)
+            }
             (Some(&j), _) => j,
             (None, Observation::Reward { value }) if !self.spec.reward.accepts(value) => return Err(Refusal::RewardOutOfRange),
             (None, Observation::Reward { .. }) => return Err(Refusal::UnknownArm),
@@ -245,16 +346,64 @@ impl Experiment {
         self.policy.choose(&self.inputs(now_ms), rng)
     }
 
-    /// Weights for the next `batch` impressions, after the bounds, without publishing them.
+    /// Weights for the next `batch` impressions, without publishing them, as the state in
+    /// force says: the policy's after the bounds while learning; the last published ones while
+    /// frozen or retired (the policy's if none were published yet); the winner's while
+    /// concluded. Arms taken out get 0.
     pub fn weights(&self, now_ms: i64, batch: u64) -> Vec<f64> {
-        let inputs = self.inputs(now_ms);
+        match self.lifecycle.state {
+            State::Learning => self.learned(now_ms, batch),
+            State::Frozen | State::Retired => self.held().unwrap_or_else(|| self.learned(now_ms, batch)),
+            State::Concluded => self.concluded().unwrap_or_else(|| self.learned(now_ms, batch)),
+        }
+    }
+
+    fn learned(&self, now_ms: i64, batch: u64) -> Vec<f64> {
+        let all = self.inputs(now_ms);
+        let active: Vec<usize> = (0..all.len()).filter(|&j| !self.removed[j]).collect();
+        let inputs: Vec<ArmInput<'_>> = active.iter().map(|&j| all[j]).collect();
         let mut raw = vec![0.0; inputs.len()];
         self.policy.weights(&inputs, batch, &mut raw);
-        let names: Vec<&str> = self.names.iter().map(String::as_str).collect();
+        let names: Vec<&str> = active.iter().map(|&j| self.names[j].as_str()).collect();
         let mut out = vec![0.0; inputs.len()];
-        let previous = (self.version > 0).then_some(self.last_weights.as_slice());
-        self.spec.bounds.apply(&names, &raw, previous, &mut out);
-        out
+        let previous: Option<Vec<f64>> = (self.version > 0).then(|| active.iter().map(|&j| self.last_weights[j]).collect());
+        self.spec.bounds.apply(&names, &raw, previous.as_deref(), &mut out);
+        let mut weights = vec![0.0; all.len()];
+        for (&j, w) in active.iter().zip(out) {
+            weights[j] = w;
+        }
+        weights
+    }
+
+    /// The last published weights of the active arms, renormalised (an arm may have been taken
+    /// out since); `None` before any publish.
+    fn held(&self) -> Option<Vec<f64>> {
+        let mut w: Vec<f64> = (0..self.names.len())
+            .map(|j| if self.removed[j] || !self.last_weights[j].is_finite() { 0.0 } else { self.last_weights[j] })
+            .collect();
+        let sum: f64 = w.iter().sum();
+        if self.version == 0 || sum <= 0.0 {
+            return None;
+        }
+        if (sum - 1.0).abs() > 1e-12 {
+            w.iter_mut().for_each(|x| *x /= sum);
+        }
+        Some(w)
+    }
+
+    /// Pinned arms keep their weight, the winner takes the rest, every other arm gets 0.
+    fn concluded(&self) -> Option<Vec<f64>> {
+        let winner = self.arm(self.lifecycle.winner.as_deref()?)?;
+        let mut w = vec![0.0; self.names.len()];
+        let mut pinned = 0.0;
+        for (j, name) in self.names.iter().enumerate() {
+            if let Some(&p) = self.spec.bounds.pinned.get(name).filter(|_| !self.removed[j] && j != winner) {
+                w[j] = p;
+                pinned += p;
+            }
+        }
+        w[winner] = (1.0 - pinned).max(0.0);
+        Some(w)
     }
 
     /// Records `weights` as published: the version goes up by one and the next publish's step
@@ -316,6 +465,91 @@ mod tests {
         e.apply("a", 6, Observation::Impression { count: 1 }).expect("impression");
         assert_eq!(e.apply("a", 7, Observation::Reward { value: 1.0 }), Ok(0));
         assert_eq!(e.arm_stats()[0].reward_total, 1.0);
+    }
+
+    fn fed(e: &mut Experiment, rounds: i64) {
+        for i in 0..rounds {
+            for (j, arm) in ["a", "b", "c"].iter().enumerate() {
+                if e.arm(arm).is_some() {
+                    e.apply(arm, i, Observation::Impression { count: 1 }).expect("impression");
+                    if (i + j as i64) % 3 == 0 {
+                        e.apply(arm, i, Observation::Reward { value: 1.0 }).expect("reward");
+                    }
+                }
+            }
+        }
+    }
+
+    fn state(state: State, revision: u64) -> Lifecycle {
+        Lifecycle { state, revision, ..Lifecycle::default() }
+    }
+
+    #[test]
+    fn a_frozen_experiment_holds_its_last_weights_while_statistics_keep_counting() {
+        let mut e = thompson(&["a", "b", "c"]);
+        fed(&mut e, 50);
+        let published = e.allocate(50, 10).weights;
+        let spec = e.spec().clone();
+        e.redefine(spec.clone(), &["a".into(), "b".into(), "c".into()], state(State::Frozen, 1), 1_000).expect("valid");
+        fed(&mut e, 500);
+        assert_eq!(e.weights(600, 10), published, "held to the bit");
+        assert_eq!(e.arm_stats()[0].pulls_total, 550, "still counting");
+        e.redefine(spec, &["a".into(), "b".into(), "c".into()], state(State::Learning, 2), 2_000).expect("valid");
+        assert_ne!(e.weights(600, 10), published, "the policy takes over again");
+    }
+
+    #[test]
+    fn a_concluded_experiment_sends_everything_to_the_winner_but_the_pinned_share() {
+        let mut spec = ExperimentSpec::new(PolicySpec::new(PolicyName::Thompson), RewardModel::Bernoulli);
+        spec.bounds.floor = 0.1;
+        spec.bounds.pinned.insert("c".into(), 0.2);
+        let arms: Vec<String> = ["a", "b", "c"].iter().map(|a| a.to_string()).collect();
+        let mut e = Experiment::new(spec.clone(), &arms).expect("valid");
+        fed(&mut e, 20);
+        let winner = Lifecycle { winner: Some("b".into()), ..state(State::Concluded, 1) };
+        e.redefine(spec, &arms, winner, 1_000).expect("valid");
+        assert_eq!(e.weights(30, 5), vec![0.0, 0.8, 0.2], "floor no longer applies; the pin stays");
+    }
+
+    #[test]
+    fn an_arm_taken_out_gets_no_weight_at_once_and_keeps_its_statistics() {
+        let mut spec = ExperimentSpec::new(PolicySpec::new(PolicyName::Thompson), RewardModel::Bernoulli);
+        spec.bounds.max_step = Some(0.01);
+        let arms: Vec<String> = ["a", "b", "c"].iter().map(|a| a.to_string()).collect();
+        let mut e = Experiment::new(spec.clone(), &arms).expect("valid");
+        fed(&mut e, 30);
+        e.allocate(30, 5);
+        let kept: Vec<String> = vec!["a".into(), "b".into()];
+        e.redefine(spec, &kept, state(State::Learning, 1), 1_000).expect("valid");
+        let w = e.weights(31, 5);
+        assert_eq!(w[2], 0.0, "no step limit holds it back");
+        assert!((w.iter().sum::<f64>() - 1.0).abs() < 1e-9, "{w:?}");
+        assert_eq!(e.arm_stats()[2].pulls_total, 30);
+        assert_eq!(e.state().removed, vec!["c".to_string()]);
+    }
+
+    #[test]
+    fn an_undeclared_arm_is_refused_when_the_definition_accepts_no_new_arms() {
+        let mut spec = ExperimentSpec::new(PolicySpec::new(PolicyName::Thompson), RewardModel::Bernoulli);
+        spec.accept_new_arms = false;
+        let mut e = Experiment::new(spec, &["a".to_string()]).expect("valid");
+        let before = e.state();
+        assert_eq!(e.apply("z", 1, Observation::Impression { count: 1 }), Err(Refusal::UndeclaredArm));
+        assert_eq!(e.state(), before);
+    }
+
+    #[test]
+    fn a_retired_experiment_refuses_events_and_its_snapshot_says_so() {
+        let mut e = thompson(&["a"]);
+        e.apply("a", 1, Observation::Impression { count: 1 }).expect("impression");
+        e.retire(5_000);
+        let before = e.state();
+        assert_eq!(e.apply("a", 2, Observation::Impression { count: 1 }), Err(Refusal::Retired));
+        assert_eq!(e.state(), before);
+        assert_eq!(before.lifecycle.state, State::Retired);
+        assert_eq!(before.lifecycle.state_since_ms, Some(5_000));
+        let back = Experiment::restore(e.spec().clone(), &["a".into()], before.clone()).expect("restores");
+        assert_eq!(back.state(), before);
     }
 
     #[test]

@@ -11,6 +11,7 @@ pub mod experiment;
 pub mod bounds;
 pub mod interval;
 pub mod kl;
+pub mod lifecycle;
 pub mod policy;
 pub mod report;
 pub mod reward;
@@ -18,6 +19,7 @@ pub mod stats;
 
 pub use experiment::{Allocation, Experiment, ExperimentSpec, ExperimentState, Observation, Refusal};
 pub use bounds::Bounds;
+pub use lifecycle::{Lifecycle, State};
 pub use policy::{Policy, PolicyName, PolicySpec};
 pub use report::Report;
 pub use reward::RewardModel;
