@@ -42,6 +42,50 @@ pub enum Command {
         #[arg(long, value_name = "FILE")]
         config: Option<PathBuf>,
     },
+    /// Change experiments while the sidecars run (through the control topic), or list them.
+    Experiment(ExperimentArgs),
+}
+
+#[derive(clap::Args, Debug)]
+pub struct ExperimentArgs {
+    #[command(subcommand)]
+    pub action: ExperimentAction,
+    /// Configuration file with the broker settings (default config/apportion.toml when it exists).
+    #[arg(long, value_name = "FILE", global = true)]
+    pub config: Option<PathBuf>,
+    /// Who makes the change (default: the OS user); shown in /experiments and logged.
+    #[arg(long, value_name = "NAME", global = true)]
+    pub by: Option<String>,
+    /// Why; shown in /experiments and logged.
+    #[arg(long, value_name = "TEXT", global = true)]
+    pub note: Option<String>,
+}
+
+#[derive(Subcommand, Debug)]
+pub enum ExperimentAction {
+    /// Define (or redefine) an experiment from a TOML or JSON file; checked before it is written.
+    Define {
+        #[arg(value_name = "FILE")]
+        file: PathBuf,
+    },
+    /// Hold the weights at the last published ones (statistics keep counting).
+    Freeze { id: String },
+    /// Let the policy set the weights again.
+    Resume { id: String },
+    /// Send all traffic to one arm (pinned arms keep theirs).
+    Conclude {
+        id: String,
+        #[arg(long, value_name = "ARM")]
+        winner: String,
+    },
+    /// End the experiment: a last weights message, then its key leaves the weights topic.
+    Retire { id: String },
+    /// Every experiment with its state, revision, arms, leader and last publish.
+    List {
+        /// One JSON array, with each experiment's definition in force.
+        #[arg(long)]
+        json: bool,
+    },
 }
 
 #[derive(clap::Args, Debug)]
@@ -88,6 +132,79 @@ pub fn main(signal: impl Future<Output = ()> + Send + 'static) -> ExitCode {
         Command::Demo(args) => crate::demo::main(args, signal),
         Command::Simulate(args) => simulate(args),
         Command::Check { config } => check(config),
+        Command::Experiment(args) => experiment(args),
+    }
+}
+
+fn experiment(args: ExperimentArgs) -> ExitCode {
+    use crate::control::command::{self, Change, CommandError, Known};
+    let (cfg, _) = match load_config(args.config) {
+        Ok(c) => c,
+        Err(e) => {
+            eprintln!("apportion experiment: {e}");
+            return ExitCode::from(2);
+        }
+    };
+    // The command says what failed itself; librdkafka's own connection logs would only repeat it.
+    crate::telemetry::init_logging(&cfg.log.format, "off");
+    let change = match args.action {
+        ExperimentAction::List { json } => {
+            return match Known::read(&cfg) {
+                Ok(k) => match crate::control::listing::print(&k.list(), json) {
+                    Ok(()) => ExitCode::SUCCESS,
+                    Err(e) => console::exit_code("experiment list", &e),
+                },
+                Err(e) => {
+                    eprintln!("apportion experiment list: {e}");
+                    ExitCode::FAILURE
+                }
+            };
+        }
+        ExperimentAction::Define { file } => match std::fs::read_to_string(&file) {
+            Ok(text) => Change::Define { text, json: file.extension().is_some_and(|x| x == "json") },
+            Err(e) => {
+                eprintln!("apportion experiment define: cannot read {}: {e}", file.display());
+                return ExitCode::from(2);
+            }
+        },
+        ExperimentAction::Freeze { id } => Change::Freeze(id),
+        ExperimentAction::Resume { id } => Change::Resume(id),
+        ExperimentAction::Conclude { id, winner } => Change::Conclude { experiment: id, winner },
+        ExperimentAction::Retire { id } => Change::Retire(id),
+    };
+    if let Change::Define { text, json } = &change {
+        if let Err(e) = command::precheck(text, *json, &cfg) {
+            eprintln!("apportion experiment define: {e}");
+            return ExitCode::from(2);
+        }
+    }
+    let by = args.by.unwrap_or_else(command::os_user);
+    let done = Known::read(&cfg)
+        .and_then(|k| k.prepare(&change, &by, args.note.as_deref(), crate::clock::now_ms()))
+        .and_then(|def| command::write(&cfg, &def).map(|()| def));
+    match done {
+        Ok(def) => {
+            let winner = def.winner.as_deref().map(|w| format!(" to {w}")).unwrap_or_default();
+            match sayln!(
+                "{}: {}{winner}, revision {} (by {}); written to {}. The owning sidecar applies it at its next publish round.",
+                def.experiment,
+                def.state,
+                def.revision,
+                by,
+                cfg.kafka.control_topic
+            ) {
+                Ok(()) => ExitCode::SUCCESS,
+                Err(e) => console::exit_code("experiment", &e),
+            }
+        }
+        Err(CommandError::Refused(m)) => {
+            eprintln!("apportion experiment: {m}");
+            ExitCode::from(2)
+        }
+        Err(e @ CommandError::Failed(_)) => {
+            eprintln!("apportion experiment: {e}");
+            ExitCode::FAILURE
+        }
     }
 }
 
@@ -167,8 +284,8 @@ fn print_check(cfg: &Config, source: &Source) -> Result<(), Unwritable> {
     sayln!("{source}")?;
     sayln!("kafka: brokers {}, group {}", cfg.kafka.brokers, cfg.kafka.group_id)?;
     sayln!(
-        "topics: input {}, weights {}, state {}, dead letters {}",
-        cfg.kafka.input_topic, cfg.kafka.weights_topic, cfg.kafka.state_topic, cfg.kafka.dead_letter_topic
+        "topics: input {}, weights {}, state {}, dead letters {}, control {}",
+        cfg.kafka.input_topic, cfg.kafka.weights_topic, cfg.kafka.state_topic, cfg.kafka.dead_letter_topic, cfg.kafka.control_topic
     )?;
     for (k, v) in cfg.client_redacted() {
         sayln!("client: {k} = {v}")?;

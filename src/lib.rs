@@ -6,6 +6,7 @@ pub mod cli;
 pub mod clock;
 pub mod config;
 pub mod console;
+pub mod control;
 pub mod core;
 pub mod demo;
 pub mod event;

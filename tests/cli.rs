@@ -303,3 +303,32 @@ fn the_old_key_guardrails_is_read_with_a_warning_naming_bounds() {
     assert_eq!(out.status.code(), Some(2), "{text}");
     assert!(text.contains("experiments[0].bounds and experiments[0].guardrails"), "{text}");
 }
+
+#[test]
+fn a_definition_file_that_fails_the_checks_exits_2_before_any_broker_is_asked() {
+    let broker = format!("127.0.0.1:{}", closed_port());
+    let config = write_config("apportion.toml", &format!("[kafka]\nbrokers = \"{broker}\"\n"));
+    let cases = [
+        ("experiment = \"x\"\narms = [\"a\", \"b\"]\n[bounds]\nfloor = 0.7\n", "floor = 0.7 cannot hold"),
+        ("experiment = \"x\"\narms = [\"a\"]\nstate = \"concluded\"\n", "needs a winner"),
+        ("experiment = \"x\"\nstate = \"paused\"\n", "paused"),
+        ("experiment = \"x\"\narms = [\"a\"]\ncolour = \"red\"\n", "colour"),
+    ];
+    for (text, expected) in cases {
+        let file = write_config("def.toml", text);
+        let out = apportion().args(["experiment", "define"]).arg(file.path()).arg("--config").arg(config.path()).output().expect("runs");
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert_eq!(out.status.code(), Some(2), "{text}: {err}");
+        assert!(err.contains(expected) && !err.contains(&broker), "{expected:?} in {err:?}, and no broker asked");
+    }
+}
+
+#[test]
+fn an_experiment_command_with_an_unreachable_broker_exits_1_naming_it() {
+    let broker = format!("127.0.0.1:{}", closed_port());
+    let config = write_config("apportion.toml", &format!("[kafka]\nbrokers = \"{broker}\"\n"));
+    let out = apportion().args(["experiment", "freeze", "thumb-style", "--config"]).arg(config.path()).output().expect("runs");
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(1), "{err}");
+    assert!(err.contains(&broker) && err.lines().count() == 1, "one line naming the broker: {err:?}");
+}

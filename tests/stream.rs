@@ -25,6 +25,7 @@ fn declare(id: &str, arms: &[&str], policy: PolicyName, reward: RewardModel, flo
         bounds: Some(Bounds { floor, ..Bounds::default() }),
         guardrails: None,
         half_life_seconds: None,
+        accept_new_arms: None,
     }
 }
 

@@ -40,6 +40,7 @@ def write_config(out, brokers, suffix, metrics_port, demo_toml):
         f"weights_topic = {toml_value(base + '.weights')}",
         f"state_topic = {toml_value(base + '.state')}",
         f"dead_letter_topic = {toml_value(base + '.dead-letter')}",
+        f"control_topic = {toml_value(base + '.control')}",
         "create_topics = true",
         "topic_partitions = 3",
         "replication_factor = 1",

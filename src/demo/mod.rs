@@ -73,7 +73,7 @@ async fn demo(args: DemoArgs, signal: impl Future<Output = ()> + Send + 'static)
     let mock = match &args.brokers {
         Some(b) => {
             cfg.kafka.brokers = b.clone();
-            let probe = crate::stream::client_config(&cfg);
+            let probe = cfg.client_config();
             let brokers = b.clone();
             tokio::task::spawn_blocking(move || reachable(probe, &brokers)).await??;
             None
@@ -84,6 +84,7 @@ async fn demo(args: DemoArgs, signal: impl Future<Output = ()> + Send + 'static)
             for t in [&cfg.kafka.input_topic, &cfg.kafka.weights_topic, &cfg.kafka.state_topic, &cfg.kafka.dead_letter_topic] {
                 m.create_topic(t, cfg.kafka.topic_partitions, 1)?;
             }
+            m.create_topic(&cfg.kafka.control_topic, 1, 1)?;
             Some(m)
         }
     };

@@ -26,35 +26,44 @@ pub mod topics;
 use std::sync::Arc;
 
 use anyhow::{anyhow, Context as _};
-use rdkafka::config::ClientConfig;
 use rdkafka::consumer::{BaseConsumer, Consumer};
 
 use crate::config::Config;
+use crate::control::{follower, Registry};
 use crate::shutdown::Shutdown;
 use crate::telemetry::http::Served;
 use pipeline::Pipeline;
 use settings::Settings;
 use source::SourceContext;
 
-/// A client configuration with the operator's librdkafka properties passed through.
-pub fn client_config(cfg: &Config) -> ClientConfig {
-    let mut c = ClientConfig::new();
-    c.set("bootstrap.servers", &cfg.kafka.brokers);
-    for (k, v) in &cfg.kafka.client {
-        c.set(k, v);
-    }
-    c
-}
-
 /// Runs the sidecar until `shutdown`: creates missing topics (retrying while the broker is
 /// unreachable), then consumes, applies, publishes and snapshots.
 pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow::Result<()> {
-    let settings = Arc::new(Settings::from_config(&cfg).map_err(|e| anyhow!(e))?);
+    let control = Arc::new(Registry::new(cfg.clone(), Some(served.metrics.control_records.clone())));
+    let settings = Arc::new(Settings::from_config(&cfg, control.clone()).map_err(|e| anyhow!(e))?);
     topics::ensure_topics(&cfg, &shutdown).await?;
     if shutdown.is_triggered() {
         return Ok(());
     }
-    let state_reader: BaseConsumer = client_config(&cfg)
+    // Every definition in force is known before any partition is taken, so that restored and
+    // new experiments start under it; /readyz stays 503 until then.
+    let follower = follower::start(&cfg, control.clone(), shutdown.clone())?;
+    let waiting = std::time::Instant::now();
+    let mut told = 0;
+    while !control.is_caught_up() && !shutdown.is_triggered() {
+        if waiting.elapsed().as_secs() >= told + 10 {
+            told = waiting.elapsed().as_secs();
+            if told > 0 {
+                tracing::warn!(topic = %cfg.kafka.control_topic, "still reading the control topic to its end ({told} s)");
+            }
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+    }
+    if shutdown.is_triggered() {
+        let _ = tokio::task::spawn_blocking(move || follower.join()).await;
+        return Ok(());
+    }
+    let state_reader: BaseConsumer = cfg.client_config()
         .set("group.id", format!("{}.state-reader", cfg.kafka.group_id))
         .set("enable.auto.commit", "false")
         .set("enable.partition.eof", "false")
@@ -65,7 +74,7 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
     let pipeline = Pipeline::new(settings.clone(), served.clone(), sink, state_reader, state_partitions);
     let fence = fence::Fence::start(&cfg.kafka.client).context("cannot start the pause watch")?;
     let (ctx, rebalances) = SourceContext::new(served.metrics.clone(), settings.input_topic.clone());
-    let mut c = client_config(&cfg);
+    let mut c = cfg.client_config();
     c.set("group.id", &cfg.kafka.group_id)
         .set("enable.auto.commit", "false")
         .set("enable.partition.eof", "false");
@@ -88,5 +97,6 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
     tokio::task::spawn_blocking(move || source::run(consumer, rebalances, fetch, fence, served, pipeline, stop))
         .await
         .context("the consumer thread failed")?;
+    let _ = tokio::task::spawn_blocking(move || follower.join()).await;
     Ok(())
 }

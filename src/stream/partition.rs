@@ -16,7 +16,7 @@ use super::producer::{send_with_retry, Sink};
 use super::resume::ResumeCheck;
 use super::settings::Settings;
 use super::snapshot::Counters;
-use crate::core::{Experiment, Observation, Refusal};
+use crate::core::{Experiment, Observation, Refusal, State};
 use crate::event::{self, Kind, Reason};
 use crate::telemetry::http::Served;
 use crate::telemetry::Metrics;
@@ -28,11 +28,17 @@ pub struct Entry {
     pub(super) changed: bool,
     pub(super) first_applied: Option<Instant>,
     pub(super) last_published: Option<Instant>,
+    /// A newer definition applies since the last publish: the next round publishes, whether
+    /// or not a weight moved, so that services see the state and revision in force.
+    pub(super) redefined: bool,
+    /// A retired experiment's last message and tombstone went out (by this instance: a new
+    /// owner sends them again, which readers take as the same news).
+    pub(super) farewell_sent: bool,
 }
 
 impl Entry {
     pub fn new(exp: Experiment) -> Entry {
-        Entry { exp, impressions_since: 0, changed: true, first_applied: None, last_published: None }
+        Entry { exp, impressions_since: 0, changed: true, first_applied: None, last_published: None, redefined: false, farewell_sent: false }
     }
 }
 
@@ -268,28 +274,35 @@ impl Applier {
         // The experiment is not held on this partition. Only a valid impression creates it;
         // everything is checked on a new experiment of its own before it joins the state, so a
         // refused event leaves nothing behind.
-        let Some((spec, arms)) = self.s.spec_of(&ev.experiment) else {
+        let Some(defined) = self.s.definition_of(&ev.experiment) else {
             return self.reject(tally, msg, Reason::UnknownExperiment, kind);
         };
+        if defined.lifecycle.state == State::Retired {
+            return self.reject(tally, msg, Reason::RetiredExperiment, kind);
+        }
+        let spec = defined.spec;
         if ev.kind == Kind::Reward {
             if !spec.reward.accepts(ev.reward) {
                 return self.reject(tally, msg, Reason::RewardOutOfRange, kind);
             }
-            let known = self.s.declared.contains_key(ev.experiment.as_ref()) || holdings.owners.contains_key(ev.experiment.as_ref());
+            let known = self.s.is_defined(&ev.experiment) || holdings.owners.contains_key(ev.experiment.as_ref());
             return self.unmatched(tally, msg, &ev.experiment, known);
         }
         if holdings.held >= self.s.max_experiments {
             return self.reject(tally, msg, Reason::TooManyExperiments, kind);
         }
-        let mut exp = match Experiment::new(spec, &arms) {
+        let mut exp = match Experiment::new(spec, &defined.arms) {
             Ok(e) => e,
             Err(e) => {
                 tracing::error!(experiment = %ev.experiment, "cannot create experiment: {e}");
                 return self.reject(tally, msg, Reason::UnknownExperiment, kind);
             }
         };
-        if exp.apply(&ev.arm, ev.ts_ms, Observation::Impression { count: ev.count }).is_err() {
-            return self.reject(tally, msg, Reason::TooManyArms, kind);
+        exp.start_in(defined.lifecycle);
+        match exp.apply(&ev.arm, ev.ts_ms, Observation::Impression { count: ev.count }) {
+            Ok(_) => {}
+            Err(Refusal::UndeclaredArm) => return self.reject(tally, msg, Reason::UnknownArm, kind),
+            Err(_) => return self.reject(tally, msg, Reason::TooManyArms, kind),
         }
         exp.raise_version(*version_floor);
         let mut entry = Entry::new(exp);
@@ -314,6 +327,8 @@ impl Applier {
             Err(Refusal::RewardOutOfRange) => return self.reject(tally, msg, Reason::RewardOutOfRange, kind),
             Err(Refusal::TooManyArms) => return self.reject(tally, msg, Reason::TooManyArms, kind),
             Err(Refusal::UnknownArm) => return self.unmatched(tally, msg, &ev.experiment, true),
+            Err(Refusal::UndeclaredArm) => return self.reject(tally, msg, Reason::UnknownArm, kind),
+            Err(Refusal::Retired) => return self.reject(tally, msg, Reason::RetiredExperiment, kind),
         }
         if let Observation::Impression { count } = obs {
             entry.impressions_since = entry.impressions_since.saturating_add(count);

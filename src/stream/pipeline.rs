@@ -80,8 +80,11 @@ impl Pipeline {
 
     /// Publishes what is due (everything with `force`); see `publisher.rs`. A partition with
     /// experiments but no landed snapshot yet gets one first (`PartitionState::snapshotted`).
+    /// Definitions read from the control topic since the last round apply first, in the
+    /// order they were read; retired experiments past their grace are dropped after.
     pub fn publish_due(&mut self, force: bool) {
         if force || self.publisher.until_due().is_zero() {
+            self.redefine();
             let first: Vec<i32> =
                 self.partitions.iter().filter(|(_, part)| !part.snapshotted && !part.experiments.is_empty()).map(|(&p, _)| p).collect();
             if !first.is_empty() {
@@ -89,6 +92,57 @@ impl Pipeline {
             }
         }
         self.publisher.publish_due(&mut self.partitions, &self.holdings, force);
+        self.drop_retired();
+    }
+
+    /// Applies the definitions that came in since the last round to the experiments held
+    /// here (on every partition that holds a copy).
+    fn redefine(&mut self) {
+        for c in self.applier.s.control.take_pending() {
+            for (&p, part) in self.partitions.iter_mut() {
+                let Some(e) = part.experiments.get_mut(c.id()) else { continue };
+                if c.revision() <= e.exp.lifecycle().revision {
+                    continue;
+                }
+                let r = &c.resolved;
+                match e.exp.redefine(r.spec.clone(), &r.arms, c.lifecycle.clone(), c.changed_at_ms()) {
+                    Ok(()) => {
+                        e.redefined = true;
+                        e.changed = true;
+                        // A retired experiment defined again comes back: it publishes anew.
+                        e.farewell_sent &= c.lifecycle.state == crate::core::State::Retired;
+                        tracing::info!(experiment = %c.id(), partition = p, revision = c.revision(), state = %c.lifecycle.state, "definition applied");
+                    }
+                    Err(err) => tracing::error!(experiment = %c.id(), partition = p, revision = c.revision(), "cannot apply the definition: {err}"),
+                }
+            }
+        }
+    }
+
+    /// Drops retired experiments whose last message went out more than
+    /// `defaults.retire_grace_seconds` ago. The partition's version floor rises past their
+    /// versions, so that the same id created again later never publishes an old version.
+    fn drop_retired(&mut self) {
+        let now = crate::clock::now_ms();
+        let grace = self.applier.s.retire_grace_ms;
+        for (&p, part) in self.partitions.iter_mut() {
+            let over: Vec<String> = part
+                .experiments
+                .iter()
+                .filter(|(_, e)| e.farewell_sent && now - e.exp.lifecycle().state_since_ms.unwrap_or(now) >= grace)
+                .map(|(id, _)| id.clone())
+                .collect();
+            for id in over {
+                if let Some(e) = part.experiments.remove(&id) {
+                    part.version_floor = part.version_floor.max(e.exp.version() + 1);
+                    self.holdings.held = self.holdings.held.saturating_sub(1);
+                    if self.holdings.owners.get(&id) == Some(&p) {
+                        self.holdings.owners.remove(&id);
+                    }
+                    tracing::info!(experiment = %id, partition = p, "retired experiment dropped after defaults.retire_grace_seconds");
+                }
+            }
+        }
     }
 
     /// Writes the snapshots of `partitions` and waits until they have landed. Returns the

@@ -54,7 +54,7 @@ pub type Sink = BaseProducer<DeliveryWatch>;
 /// Creates the producer (idempotent, lz4, 5 ms linger unless the operator's client properties
 /// say otherwise) and starts the thread that serves its delivery reports.
 pub fn create(cfg: &Config) -> anyhow::Result<Arc<Sink>> {
-    let mut c = super::client_config(cfg);
+    let mut c = cfg.client_config();
     for (k, v) in [("enable.idempotence", "true"), ("linger.ms", "5"), ("compression.type", "lz4")] {
         if !cfg.kafka.client.contains_key(k) {
             c.set(k, v);

@@ -13,7 +13,7 @@ use super::producer::{send_with_retry, Sink};
 use super::settings::Settings;
 use crate::clock::now_ms;
 use crate::core::report::{ArmReport, Report};
-use crate::core::{Allocation, Experiment};
+use crate::core::{Allocation, Experiment, State};
 use crate::telemetry::http::Served;
 use crate::telemetry::table::{ArmRow, ExperimentRow};
 /// What the weights message carries of an arm's figures: the contract's five fields.
@@ -37,6 +37,10 @@ impl Serialize for ArmSummary<'_> {
 pub struct WeightsMessage<'a> {
     pub experiment: &'a str,
     pub version: u64,
+    /// The state in force (`learning`, `frozen`, `concluded`, `retired`).
+    pub state: &'static str,
+    /// The revision of the definition in force (0: the configuration file's).
+    pub revision: u64,
     pub policy: &'a str,
     pub published_at_ms: i64,
     pub leader: Option<&'a str>,
@@ -46,20 +50,21 @@ pub struct WeightsMessage<'a> {
 }
 
 impl<'a> WeightsMessage<'a> {
+    /// The message of one publish. Arms a definition took out are not in it: services give
+    /// them no traffic; their figures stay in `/experiments`.
     pub fn new(id: &'a str, exp: &'a Experiment, alloc: &'a Allocation, now_ms: i64) -> Self {
         let names = exp.arm_names();
+        let active = |j: &usize| exp.is_active(*j);
         WeightsMessage {
             experiment: id,
             version: alloc.version,
+            state: exp.lifecycle().state.as_str(),
+            revision: exp.lifecycle().revision,
             policy: exp.policy_name(),
             published_at_ms: now_ms,
             leader: alloc.report.leader.map(|l| names[l].as_str()),
-            weights: names.iter().map(String::as_str).zip(alloc.weights.iter().copied()).collect(),
-            arms: names
-                .iter()
-                .zip(&alloc.report.arms)
-                .map(|(n, a)| (n.as_str(), ArmSummary(a)))
-                .collect(),
+            weights: (0..names.len()).filter(active).map(|j| (names[j].as_str(), alloc.weights[j])).collect(),
+            arms: (0..names.len()).filter(active).map(|j| (names[j].as_str(), ArmSummary(&alloc.report.arms[j]))).collect(),
             regret_estimate: alloc.report.regret_estimate,
         }
     }
@@ -88,7 +93,10 @@ impl Publisher {
     /// partition that owns it, see [`Holdings`]), and refreshes the figures the HTTP side serves
     /// for every experiment that changed. Called between messages. An experiment is due on its
     /// first publish, on the heartbeat, when an arm joined, or when a weight moved by at least
-    /// `publish.min_change`.
+    /// `publish.min_change`, or when a newer definition applies. A retired experiment publishes
+    /// once more, saying so, then a tombstone for its key, and leaves what the HTTP side shows.
+    /// An experiment created on first sight and idle for `defaults.idle_retire_seconds` is
+    /// retired here.
     pub fn publish_due(&mut self, partitions: &mut BTreeMap<i32, PartitionState>, holdings: &Holdings, force: bool) {
         let s = &self.s;
         if !force && self.last_publish.elapsed() < s.publish_interval {
@@ -98,17 +106,27 @@ impl Publisher {
         let now = now_ms();
         let metrics = &self.served.metrics;
         let mut updates: Vec<(String, ExperimentRow)> = Vec::new();
+        let mut gone: Vec<String> = Vec::new();
         for (&partition, part) in partitions.iter_mut() {
             if !part.snapshotted {
                 // Not yet: see `PartitionState::snapshotted` (the pipeline writes one first).
                 continue;
             }
             for (id, e) in part.experiments.iter_mut() {
-                if holdings.owners.get(id) != Some(&partition) {
+                if holdings.owners.get(id) != Some(&partition) || e.farewell_sent {
                     continue;
                 }
+                if let Some(idle) = s.idle_retire_ms {
+                    let last = e.exp.last_pull_ms().unwrap_or(now);
+                    if e.exp.lifecycle().state != State::Retired && now - last >= idle && !s.is_defined(id) {
+                        tracing::info!(experiment = %id, idle_seconds = (now - last) / 1000, "experiment created on first sight retired: no impression for defaults.idle_retire_seconds");
+                        e.exp.retire(now);
+                        e.redefined = true;
+                    }
+                }
+                let retired = e.exp.lifecycle().state == State::Retired;
                 let heartbeat = e.last_published.is_none_or(|t| t.elapsed() >= s.heartbeat);
-                if !(e.changed || heartbeat) {
+                if !(e.changed || heartbeat || e.redefined) {
                     continue;
                 }
                 let weights = e.exp.weights(now, e.impressions_since.max(1));
@@ -120,7 +138,7 @@ impl Publisher {
                     .map(|(a, b)| if a.is_finite() { (a - b).abs() } else { f64::INFINITY })
                     .fold(0.0, f64::max);
                 let new_arm = weights.len() != e.exp.last_weights().len();
-                let publish = e.exp.version() == 0 || heartbeat || new_arm || moved >= s.min_change;
+                let publish = e.exp.version() == 0 || heartbeat || new_arm || e.redefined || retired || moved >= s.min_change;
                 let report = if publish {
                     let version = e.exp.commit(&weights);
                     let alloc = Allocation { version, weights, report: e.exp.report(now) };
@@ -132,6 +150,14 @@ impl Publisher {
                         }
                         Err(err) => tracing::error!(experiment = %id, "cannot encode weights: {err}"),
                     }
+                    if retired {
+                        // The key leaves the compacted topic, so that no service keeps using
+                        // the last split of an experiment that is over.
+                        send_with_retry(&self.sink, BaseRecord::<[u8], [u8]>::to(&s.weights_topic).key(id.as_bytes()));
+                        e.farewell_sent = true;
+                        gone.push(id.clone());
+                        tracing::info!(experiment = %id, version, "retired: last weights and a tombstone published");
+                    }
                     if let Some(t) = e.first_applied.take() {
                         metrics.publish_latency.observe(t.elapsed().as_secs_f64());
                     }
@@ -142,13 +168,20 @@ impl Publisher {
                     e.exp.report(now)
                 };
                 e.changed = false;
-                updates.push((id.clone(), row(partition, &e.exp, &report, publish.then_some(now))));
+                e.redefined = false;
+                if !e.farewell_sent {
+                    updates.push((id.clone(), row(partition, &e.exp, &report, publish.then_some(now))));
+                }
             }
         }
-        if updates.is_empty() {
+        if updates.is_empty() && gone.is_empty() {
             return;
         }
         let mut table = self.served.table.write().unwrap_or_else(|p| p.into_inner());
+        for id in gone {
+            table.rows.remove(&id);
+            metrics.remove_experiment(&id);
+        }
         for (id, mut r) in updates {
             if r.published_ms.is_none() {
                 // Not published this round: the time of the last publish stands.
@@ -165,6 +198,7 @@ fn row(partition: i32, exp: &Experiment, report: &Report, published_ms: Option<i
     let published = exp.version() > 0;
     ExperimentRow {
         partition,
+        lifecycle: exp.lifecycle().clone(),
         policy: exp.policy_name(),
         version: exp.version(),
         leader: report.leader,
@@ -176,7 +210,12 @@ fn row(partition: i32, exp: &Experiment, report: &Report, published_ms: Option<i
             .iter()
             .zip(&report.arms)
             .enumerate()
-            .map(|(j, (name, a))| ArmRow { name: name.clone(), figures: a.clone(), weight: weights.get(j).copied().filter(|w| w.is_finite()) })
+            .map(|(j, (name, a))| ArmRow {
+                name: name.clone(),
+                figures: a.clone(),
+                weight: weights.get(j).copied().filter(|w| w.is_finite() && exp.is_active(j)),
+                removed: !exp.is_active(j),
+            })
             .collect(),
     }
 }

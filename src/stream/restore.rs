@@ -62,12 +62,20 @@ impl Restorer {
         let lost = (since / self.s.publish_interval.as_millis().max(1) as f64).ceil() as u64 + 1;
         let mut experiments = FxHashMap::default();
         for (id, state) in snap.experiments {
-            let Some((spec, arms)) = self.s.spec_of(&id) else {
+            let Some(defined) = self.s.definition_of(&id) else {
                 tracing::warn!(experiment = %id, partition = p, "experiment in the snapshot is no longer declared; dropped");
                 continue;
             };
             let version = state.version;
-            match Experiment::restore(spec, &arms, state) {
+            // The snapshot says which revision it was made under; a newer one in force now
+            // applies from here on, an older or equal one was applied already.
+            let restored = Experiment::restore(defined.spec.clone(), &defined.arms, state).and_then(|mut exp| {
+                if defined.lifecycle.revision > exp.lifecycle().revision {
+                    exp.redefine(defined.spec, &defined.arms, defined.lifecycle, defined.changed_at_ms)?;
+                }
+                Ok(exp)
+            });
+            match restored {
                 Ok(mut exp) => {
                     exp.raise_version(version + lost);
                     experiments.insert(id, Entry::new(exp));
@@ -237,7 +245,7 @@ mod tests {
             .set("group.id", "unused")
             .create()
             .expect("a consumer (it connects only when used)");
-        Restorer::new(Arc::new(Settings::from_config(&cfg).expect("default settings")), reader, 1)
+        Restorer::new(Arc::new(Settings::from_config(&cfg, Arc::new(crate::control::Registry::new(cfg.clone(), None))).expect("default settings")), reader, 1)
     }
 
     fn snapshot(written_ms_ago: i64, version_floor: u64) -> Snapshot {

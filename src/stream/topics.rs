@@ -27,12 +27,15 @@ pub fn partition_count(client: &BaseConsumer, topic: &str) -> anyhow::Result<i32
 /// Creates the topics that are missing; waits with back-off while the broker is unreachable.
 pub async fn ensure_topics(cfg: &Config, shutdown: &Shutdown) -> anyhow::Result<()> {
     let k = &cfg.kafka;
-    let admin: AdminClient<DefaultClientContext> = super::client_config(cfg).create().context("cannot create the admin client")?;
+    let admin: AdminClient<DefaultClientContext> = cfg.client_config().create().context("cannot create the admin client")?;
+    // The control topic has one partition: it is small, and one partition keeps every
+    // instance reading its records in the same order.
     let wanted = [
-        (&k.input_topic, None),
-        (&k.weights_topic, Some("compact")),
-        (&k.state_topic, Some("compact")),
-        (&k.dead_letter_topic, Some("delete")),
+        (&k.input_topic, None, k.topic_partitions),
+        (&k.weights_topic, Some("compact"), k.topic_partitions),
+        (&k.state_topic, Some("compact"), k.topic_partitions),
+        (&k.dead_letter_topic, Some("delete"), k.topic_partitions),
+        (&k.control_topic, Some("compact"), 1),
     ];
     let mut delay = Duration::from_millis(500);
     loop {
@@ -42,21 +45,21 @@ pub async fn ensure_topics(cfg: &Config, shutdown: &Shutdown) -> anyhow::Result<
         match admin.inner().fetch_metadata(None, Duration::from_secs(5)) {
             Ok(md) => {
                 let existing: Vec<&str> = md.topics().iter().map(|t| t.name()).collect();
-                let missing: Vec<_> = wanted.iter().filter(|(n, _)| !existing.contains(&n.as_str())).collect();
+                let missing: Vec<_> = wanted.iter().filter(|(n, _, _)| !existing.contains(&n.as_str())).collect();
                 if missing.is_empty() {
                     return Ok(());
                 }
                 if !k.create_topics {
-                    let names: Vec<&str> = missing.iter().map(|(n, _)| n.as_str()).collect();
+                    let names: Vec<&str> = missing.iter().map(|(n, _, _)| n.as_str()).collect();
                     return Err(anyhow!(
-                        "topics {} do not exist and kafka.create_topics is off; create them (weights and state with cleanup.policy=compact)",
+                        "topics {} do not exist and kafka.create_topics is off; create them (weights, state and control with cleanup.policy=compact)",
                         names.join(", ")
                     ));
                 }
                 let topics: Vec<NewTopic> = missing
                     .iter()
-                    .map(|(n, policy)| {
-                        let t = NewTopic::new(n, k.topic_partitions, TopicReplication::Fixed(k.replication_factor));
+                    .map(|(n, policy, partitions)| {
+                        let t = NewTopic::new(n, *partitions, TopicReplication::Fixed(k.replication_factor));
                         match policy {
                             Some(p) => t.set("cleanup.policy", p),
                             None => t,
@@ -74,7 +77,7 @@ pub async fn ensure_topics(cfg: &Config, shutdown: &Shutdown) -> anyhow::Result<
                                 Err((_, RDKafkaErrorCode::TopicAlreadyExists)) => {}
                                 Err((name, code @ (RDKafkaErrorCode::TopicAuthorizationFailed | RDKafkaErrorCode::ClusterAuthorizationFailed | RDKafkaErrorCode::PolicyViolation))) => {
                                     return Err(anyhow!(
-                                        "the broker refused to create topic {name} ({code}); create it yourself (weights and state topics with cleanup.policy=compact) or grant this client CreateTopics, then start again"
+                                        "the broker refused to create topic {name} ({code}); create it yourself (weights, state and control topics with cleanup.policy=compact) or grant this client CreateTopics, then start again"
                                     ));
                                 }
                                 Err((name, code)) => tracing::warn!(topic = %name, "cannot create topic yet: {code}"),

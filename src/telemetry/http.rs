@@ -138,6 +138,7 @@ mod tests {
         m.dead_letters.with_label_values(&["malformed"]).inc();
         m.split.with_label_values(&["e"]).inc();
         m.unmatched_rewards.with_label_values(&["e"]).inc();
+        m.control_records.with_label_values(&["applied"]).inc();
         m.publish_latency.observe(0.1);
         m.consumer_lag.with_label_values(&["t", "0"]).set(1);
         m.snapshot_time.with_label_values(&["0"]).set(1.0);
@@ -157,7 +158,7 @@ mod tests {
                 version: 1,
                 exploration: Some(0.5),
                 published_ms: Some(1),
-                arms: vec![ArmRow { name: "a".into(), figures, weight: Some(1.0) }],
+                arms: vec![ArmRow { name: "a".into(), figures, weight: Some(1.0), removed: false }],
                 ..ExperimentRow::default()
             },
         );

@@ -18,6 +18,8 @@ pub struct Metrics {
     pub dead_letters: IntCounterVec,
     pub split: IntCounterVec,
     pub unmatched_rewards: IntCounterVec,
+    /// Control records read by this instance since it started, by outcome.
+    pub control_records: IntCounterVec,
     pub publish_latency: Histogram,
     pub consumer_lag: IntGaugeVec,
     pub snapshot_time: GaugeVec,
@@ -42,6 +44,10 @@ impl Metrics {
             dead_letters: reg!(IntCounterVec::new(Opts::new(names::DEAD_LETTERS, "Events sent to the dead-letter topic, by reason"), &["reason"])?),
             split: reg!(IntCounterVec::new(Opts::new(names::EXPERIMENT_SPLIT, "Events of an experiment seen on more than one input partition"), exp)?),
             unmatched_rewards: reg!(IntCounterVec::new(Opts::new(names::UNMATCHED_REWARDS, "Rewards refused for an arm with no impressions (dead-lettered unknown-arm)"), exp)?),
+            control_records: reg!(IntCounterVec::new(
+                Opts::new(names::CONTROL_RECORDS, "Control records read since start, by outcome (applied, stale, invalid)"),
+                &["outcome"]
+            )?),
             publish_latency: reg!(Histogram::with_opts(
                 HistogramOpts::new(names::PUBLISH_LATENCY, "From the first event applied after a publish to the next publish of its experiment")
                     .buckets(vec![0.01, 0.05, 0.1, 0.25, 0.5, 1.0, 2.0, 5.0, 10.0, 30.0, 60.0])

@@ -12,6 +12,7 @@ pub const CONSUMER_LAG: &str = "apportion_consumer_lag_messages";
 pub const SNAPSHOT_TIME: &str = "apportion_state_snapshot_timestamp_seconds";
 pub const BUILD_INFO: &str = "apportion_build_info";
 pub const READY: &str = "apportion_ready";
+pub const CONTROL_RECORDS: &str = "apportion_control_records_total";
 
 pub const ARM_PULLS: &str = "apportion_arm_pulls_total";
 pub const ARM_REWARD: &str = "apportion_arm_reward_total";
@@ -25,12 +26,15 @@ pub const EXPERIMENT_REGRET: &str = "apportion_experiment_regret_estimate";
 pub const EXPERIMENT_EXPLORATION: &str = "apportion_experiment_exploration_ratio";
 pub const WEIGHTS_VERSION: &str = "apportion_weights_version";
 pub const WEIGHTS_PUBLISHED: &str = "apportion_weights_published_timestamp_seconds";
+pub const EXPERIMENT_STATE: &str = "apportion_experiment_state";
+pub const EXPERIMENT_REVISION: &str = "apportion_experiment_revision";
+pub const EXPERIMENT_STATE_SINCE: &str = "apportion_experiment_state_since_timestamp_seconds";
 
 /// Families that are histograms (their series end in `_bucket`, `_sum` and `_count`).
 pub const HISTOGRAMS: [&str; 1] = [PUBLISH_LATENCY];
 
 /// Every family, instance-wide ones first.
-pub const ALL: [&str; 21] = [
+pub const ALL: [&str; 25] = [
     EVENTS,
     DEAD_LETTERS,
     EXPERIMENT_SPLIT,
@@ -40,6 +44,7 @@ pub const ALL: [&str; 21] = [
     SNAPSHOT_TIME,
     BUILD_INFO,
     READY,
+    CONTROL_RECORDS,
     ARM_PULLS,
     ARM_REWARD,
     ARM_MEAN,
@@ -52,4 +57,7 @@ pub const ALL: [&str; 21] = [
     EXPERIMENT_EXPLORATION,
     WEIGHTS_VERSION,
     WEIGHTS_PUBLISHED,
+    EXPERIMENT_STATE,
+    EXPERIMENT_REVISION,
+    EXPERIMENT_STATE_SINCE,
 ];

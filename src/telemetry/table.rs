@@ -13,6 +13,7 @@ use serde::ser::{Serialize, SerializeMap, Serializer};
 
 use super::names;
 use crate::core::report::ArmReport;
+use crate::core::Lifecycle;
 
 /// One arm as served, as of the experiment's last publish round: its name, the figures the
 /// core reported, and the weight last published.
@@ -20,14 +21,18 @@ use crate::core::report::ArmReport;
 pub struct ArmRow {
     pub name: String,
     pub figures: ArmReport,
-    /// Last published weight; `None` before the arm's first publish.
+    /// Last published weight; `None` before the arm's first publish and for an arm taken out.
     pub weight: Option<f64>,
+    /// Taken out by a definition: no weight, statistics kept.
+    pub removed: bool,
 }
 
 /// One experiment's figures.
 #[derive(Clone, Debug, Default, PartialEq)]
 pub struct ExperimentRow {
     pub partition: i32,
+    /// State, revision and last change of the definition in force.
+    pub lifecycle: Lifecycle,
     pub policy: &'static str,
     pub version: u64,
     /// Index into `arms`.
@@ -83,8 +88,9 @@ const ARM_FAMILIES: [(&str, &str, &str, ArmValue); 8] = [
 /// How many families [`Table::write_family`] writes.
 pub const FAMILIES: usize = ARM_FAMILIES.len() + EXPERIMENT_FAMILIES.len();
 
-/// Per-experiment families.
-const EXPERIMENT_FAMILIES: [(&str, &str, &str, ExperimentValue); 4] = [
+/// Per-experiment families. The state family carries the state as a label, with value 1
+/// ([`Table::write_family`] adds it).
+const EXPERIMENT_FAMILIES: [(&str, &str, &str, ExperimentValue); 7] = [
     (
         names::EXPERIMENT_REGRET,
         "gauge",
@@ -103,6 +109,19 @@ const EXPERIMENT_FAMILIES: [(&str, &str, &str, ExperimentValue); 4] = [
         "gauge",
         "When the experiment's weights were last published",
         |e| e.published_ms.map(|t| t as f64 / 1000.0),
+    ),
+    (names::EXPERIMENT_STATE, "gauge", "1 for the experiment's state in force (label state)", |_| Some(1.0)),
+    (
+        names::EXPERIMENT_REVISION,
+        "gauge",
+        "Revision of the definition in force (0: the configuration file's)",
+        |e| Some(e.lifecycle.revision as f64),
+    ),
+    (
+        names::EXPERIMENT_STATE_SINCE,
+        "gauge",
+        "When the state in force began (the change's own time)",
+        |e| e.lifecycle.state_since_ms.map(|t| t as f64 / 1000.0),
     ),
 ];
 
@@ -135,6 +154,8 @@ impl Table {
                         sample(out, name, &[("experiment", id), ("arm", &arm.name)], v);
                     }
                 }
+            } else if name == names::EXPERIMENT_STATE {
+                sample(out, name, &[("experiment", id), ("state", row.lifecycle.state.as_str())], 1.0);
             } else if let Some(v) = (EXPERIMENT_FAMILIES[f - ARM_FAMILIES.len()].3)(row) {
                 sample(out, name, &[("experiment", id)], v);
             }
@@ -218,14 +239,25 @@ impl Serialize for ExperimentRow {
         #[derive(serde::Serialize)]
         struct View<'a> {
             partition: i32,
+            state: &'a str,
+            revision: u64,
+            state_since_ms: Option<i64>,
+            changed_by: Option<&'a str>,
+            note: Option<&'a str>,
             policy: &'a str,
             version: u64,
             leader: Option<&'a str>,
             regret_estimate: f64,
             arms: Arms<'a>,
         }
+        let l = &self.lifecycle;
         View {
             partition: self.partition,
+            state: l.state.as_str(),
+            revision: l.revision,
+            state_since_ms: l.state_since_ms,
+            changed_by: l.changed_by.as_deref(),
+            note: l.note.as_deref(),
             policy: self.policy,
             version: self.version,
             leader: self.leader.and_then(|l| self.arms.get(l)).map(|a| a.name.as_str()),
@@ -241,7 +273,7 @@ struct ArmJson<'a>(&'a ArmRow);
 impl Serialize for ArmJson<'_> {
     fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
         let (a, f) = (self.0, &self.0.figures);
-        let mut m = s.serialize_map(Some(8))?;
+        let mut m = s.serialize_map(Some(9))?;
         m.serialize_entry("pulls", &f.pulls)?;
         m.serialize_entry("reward", &f.reward)?;
         m.serialize_entry("mean", &f.mean)?;
@@ -250,6 +282,7 @@ impl Serialize for ArmJson<'_> {
         m.serialize_entry("weight", &a.weight)?;
         m.serialize_entry("undecided", &f.undecided)?;
         m.serialize_entry("excess_rewards", &f.excess_rewards)?;
+        m.serialize_entry("removed", &a.removed)?;
         m.end()
     }
 }
@@ -284,12 +317,14 @@ mod tests {
                 excess_rewards: 0.0,
             },
             weight,
+            removed: false,
         };
         let mut t = Table::default();
         t.rows.insert(
             "a\"b".into(),
             ExperimentRow {
                 partition: 1,
+                lifecycle: Lifecycle::default(),
                 policy: "thompson",
                 version: 3,
                 leader: Some(1),
@@ -311,6 +346,8 @@ mod tests {
         assert!(out.contains("apportion_arm_last_pull_timestamp_seconds{experiment=\"a\\\"b\",arm=\"x\"} 1764547200.5\n"));
         assert!(out.contains("apportion_weights_version{experiment=\"a\\\"b\"} 3\n"));
         assert!(out.contains("# TYPE apportion_arm_pulls_total counter\n"));
+        assert!(out.contains("apportion_experiment_state{experiment=\"a\\\"b\",state=\"learning\"} 1\n"), "{out}");
+        assert!(out.contains("apportion_experiment_revision{experiment=\"a\\\"b\"} 0\n"));
     }
 
     #[test]

@@ -62,6 +62,7 @@ impl ProcConfig {
         format!(
             "[kafka]\nbrokers = \"{brokers}\"\ngroup_id = \"{id}.group\"\ninput_topic = \"{id}.events\"\n\
              weights_topic = \"{id}.weights\"\nstate_topic = \"{id}.state\"\ndead_letter_topic = \"{id}.dead-letter\"\n\
+             control_topic = \"{id}.control\"\n\
              topic_partitions = {partitions}\n\n[metrics]\nlisten = \"127.0.0.1:{port}\"\n\n{sections}\n",
             brokers = self.brokers,
             id = self.id,

@@ -18,6 +18,7 @@ pub fn config(name: &str, partitions: i32) -> Config {
     cfg.kafka.weights_topic = format!("{id}.weights");
     cfg.kafka.state_topic = format!("{id}.state");
     cfg.kafka.dead_letter_topic = format!("{id}.dead-letter");
+    cfg.kafka.control_topic = format!("{id}.control");
     cfg.kafka.topic_partitions = partitions;
     cfg.metrics.listen = format!("127.0.0.1:{}", free_port());
     cfg.publish.interval_seconds = 0.2;
