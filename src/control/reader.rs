@@ -6,18 +6,32 @@ use std::collections::BTreeSet;
 use std::time::{Duration, Instant};
 
 use anyhow::{anyhow, Context as _};
-use rdkafka::consumer::{BaseConsumer, Consumer};
+use rdkafka::consumer::{BaseConsumer, Consumer, ConsumerContext};
 use rdkafka::error::KafkaError;
 use rdkafka::message::Message;
-use rdkafka::{Offset, TopicPartitionList};
+use rdkafka::{ClientContext, Offset, TopicPartitionList};
 
 use crate::config::Config;
 
 /// Called with each message: offset, key, value (`None`: a tombstone).
 pub type Visit<'a> = dyn FnMut(i64, Option<&[u8]>, Option<&[u8]>) + 'a;
 
+/// Reaching a partition's end is how a whole-topic read knows it is done, not an error:
+/// librdkafka's default context would log each one as an error.
+pub struct EndIsNews;
+
+impl ClientContext for EndIsNews {
+    fn error(&self, error: KafkaError, reason: &str) {
+        if !matches!(error, KafkaError::PartitionEOF(_)) {
+            tracing::error!("librdkafka: {error}: {reason}");
+        }
+    }
+}
+
+impl ConsumerContext for EndIsNews {}
+
 pub struct TopicReader {
-    consumer: BaseConsumer,
+    consumer: BaseConsumer<EndIsNews>,
     topic: String,
     /// Partitions not yet read to their end. The end is the fetch's (librdkafka's partition
     /// end-of-file), not the high watermark: tansu 0.6 reports as high watermark the base
@@ -29,12 +43,12 @@ impl TopicReader {
     /// Assigns every partition of `topic` from its beginning. `purpose` names the client in
     /// the broker's logs (`<group_id>.<purpose>`); it never joins or commits to that group.
     pub fn open(cfg: &Config, topic: &str, purpose: &str) -> anyhow::Result<TopicReader> {
-        let consumer: BaseConsumer = cfg
+        let consumer: BaseConsumer<EndIsNews> = cfg
             .client_config()
             .set("group.id", format!("{}.{purpose}", cfg.kafka.group_id))
             .set("enable.auto.commit", "false")
             .set("enable.partition.eof", "true")
-            .create()
+            .create_with_context(EndIsNews)
             .with_context(|| format!("cannot create a reader of {topic}"))?;
         let md = consumer
             .fetch_metadata(Some(topic), Duration::from_secs(10))

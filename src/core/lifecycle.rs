@@ -63,8 +63,8 @@ pub struct Lifecycle {
     pub revision: u64,
     /// The arm a concluded experiment sends its traffic to.
     pub winner: Option<String>,
-    /// When the state in force began (ms since the epoch, the change's own time); `None` while
-    /// the experiment has never changed state.
+    /// When the state in force began (ms since the epoch): the change's own time, or when the
+    /// experiment was created; `None` in snapshots of older writers.
     pub state_since_ms: Option<i64>,
     pub changed_by: Option<String>,
     pub note: Option<String>,

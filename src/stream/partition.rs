@@ -298,7 +298,10 @@ impl Applier {
                 return self.reject(tally, msg, Reason::UnknownExperiment, kind);
             }
         };
-        exp.start_in(defined.lifecycle);
+        // An experiment that never changed state has been learning since now.
+        let mut lifecycle = defined.lifecycle;
+        lifecycle.state_since_ms = lifecycle.state_since_ms.or(Some(now_ms));
+        exp.start_in(lifecycle);
         match exp.apply(&ev.arm, ev.ts_ms, Observation::Impression { count: ev.count }) {
             Ok(_) => {}
             Err(Refusal::UndeclaredArm) => return self.reject(tally, msg, Reason::UnknownArm, kind),
