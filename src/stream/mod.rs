@@ -49,13 +49,11 @@ pub async fn run(cfg: Config, served: Arc<Served>, shutdown: Shutdown) -> anyhow
     // new experiments start under it; /readyz stays 503 until then.
     let follower = follower::start(&cfg, control.clone(), shutdown.clone())?;
     let waiting = std::time::Instant::now();
-    let mut told = 0;
+    let mut warn_at = 10;
     while !control.is_caught_up() && !shutdown.is_triggered() {
-        if waiting.elapsed().as_secs() >= told + 10 {
-            told = waiting.elapsed().as_secs();
-            if told > 0 {
-                tracing::warn!(topic = %cfg.kafka.control_topic, "still reading the control topic to its end ({told} s)");
-            }
+        if waiting.elapsed().as_secs() >= warn_at {
+            tracing::warn!(topic = %cfg.kafka.control_topic, "still reading the control topic to its end ({warn_at} s)");
+            warn_at += 10;
         }
         tokio::time::sleep(std::time::Duration::from_millis(20)).await;
     }
