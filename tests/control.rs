@@ -90,15 +90,22 @@ fn traffic(prefix: &str, experiment: &str, arms: &[&str], n: usize, every: &[usi
     out
 }
 
+/// One sidecar process on a single-partition input topic of its own, with `extra` TOML, ready.
+fn one_sidecar(name: &str, extra: &str) -> (ProcConfig, SidecarProcess) {
+    let mut cfg = ProcConfig::new(name, &brokers(), 1);
+    cfg.extra = extra.to_string();
+    let mut sidecar = cfg.start(cfg.port);
+    sidecar.assert_ready(Duration::from_secs(60));
+    (cfg, sidecar)
+}
+
 #[test]
 fn a_definition_written_while_the_sidecar_runs_publishes_its_declared_arms_only() {
     if no_broker() {
         return;
     }
     let _one = exclusive();
-    let cfg = ProcConfig::new("define", &brokers(), 1);
-    let mut sidecar = cfg.start(cfg.port);
-    sidecar.assert_ready(Duration::from_secs(60));
+    let (cfg, mut sidecar) = one_sidecar("define", "");
     let file = definition_file(
         "launch.toml",
         "experiment = \"launch-x\"\narms = [\"warm\", \"cool\"]\naccept_new_arms = false\nnote = \"ignored: --note wins\"\n[bounds]\nfloor = 0.1\n",
@@ -130,10 +137,7 @@ fn freezing_holds_the_weights_byte_for_byte_while_statistics_count_and_resuming_
         return;
     }
     let _one = exclusive();
-    let mut cfg = ProcConfig::new("freeze", &brokers(), 1);
-    cfg.extra = "\n[[experiments]]\nid = \"hold\"\narms = [\"a\", \"b\", \"c\"]\n".into();
-    let mut sidecar = cfg.start(cfg.port);
-    sidecar.assert_ready(Duration::from_secs(60));
+    let (cfg, mut sidecar) = one_sidecar("freeze", "\n[[experiments]]\nid = \"hold\"\narms = [\"a\", \"b\", \"c\"]\n");
     let (events, weights, config) = (cfg.topic("events"), cfg.topic("weights"), sidecar.config_path());
     produce(&events, &traffic("warm", "hold", &["a", "b", "c"], 300, &[2, 5, 9]));
     wait_for_weights(&weights, "hold", Duration::from_secs(30), |v| v["arms"]["a"]["pulls"] == 300);
@@ -190,10 +194,7 @@ fn concluding_sends_everything_to_the_winner_and_retiring_says_so_then_removes_t
         return;
     }
     let _one = exclusive();
-    let mut cfg = ProcConfig::new("retire", &brokers(), 1);
-    cfg.extra = "\n[defaults]\nretire_grace_seconds = 3\n\n[[experiments]]\nid = \"wrap\"\narms = [\"a\", \"b\", \"c\"]\nbounds = { floor = 0.05, pinned = { c = 0.2 } }\n".into();
-    let mut sidecar = cfg.start(cfg.port);
-    sidecar.assert_ready(Duration::from_secs(60));
+    let (cfg, mut sidecar) = one_sidecar("retire", "\n[defaults]\nretire_grace_seconds = 3\n\n[[experiments]]\nid = \"wrap\"\narms = [\"a\", \"b\", \"c\"]\nbounds = { floor = 0.05, pinned = { c = 0.2 } }\n");
     let (events, weights, config) = (cfg.topic("events"), cfg.topic("weights"), sidecar.config_path());
     produce(&events, &traffic("w", "wrap", &["a", "b", "c"], 100, &[3, 2, 4]));
     wait_for_weights(&weights, "wrap", Duration::from_secs(30), |v| v["arms"]["a"]["pulls"] == 100);
@@ -242,9 +243,7 @@ fn stale_and_invalid_control_records_are_refused_and_counted_and_the_stream_goes
         return;
     }
     let _one = exclusive();
-    let cfg = ProcConfig::new("refuse", &brokers(), 1);
-    let mut sidecar = cfg.start(cfg.port);
-    sidecar.assert_ready(Duration::from_secs(60));
+    let (cfg, mut sidecar) = one_sidecar("refuse", "");
     let (events, weights, control) = (cfg.topic("events"), cfg.topic("weights"), cfg.topic("control"));
     let def = |revision: u64, state: &str, more: &str| {
         format!(r#"{{"experiment":"guard","revision":{revision},"state":"{state}","arms":["a","b"]{more}}}"#).into_bytes()
@@ -358,10 +357,7 @@ fn an_experiment_created_on_first_sight_retires_when_idle_and_a_declared_one_doe
         return;
     }
     let _one = exclusive();
-    let mut cfg = ProcConfig::new("idle", &brokers(), 1);
-    cfg.extra = "\n[defaults]\nidle_retire_seconds = 2\nretire_grace_seconds = 600\n\n[[experiments]]\nid = \"kept\"\narms = [\"a\", \"b\"]\n".into();
-    let mut sidecar = cfg.start(cfg.port);
-    sidecar.assert_ready(Duration::from_secs(60));
+    let (cfg, mut sidecar) = one_sidecar("idle", "\n[defaults]\nidle_retire_seconds = 2\nretire_grace_seconds = 600\n\n[[experiments]]\nid = \"kept\"\narms = [\"a\", \"b\"]\n");
     let (events, weights) = (cfg.topic("events"), cfg.topic("weights"));
     let mut all = traffic("b", "brief", &["a", "b"], 10, &[2, 3]);
     all.extend(traffic("k", "kept", &["a", "b"], 10, &[2, 3]));
