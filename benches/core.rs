@@ -17,7 +17,7 @@ fn experiment(policy: PolicyName, arms: usize, pulls: u64) -> Experiment {
         e.observe(j, 0, Observation::Impression { count: pulls }).unwrap();
         let rate = 0.03 + 0.002 * j as f64;
         for _ in 0..(rate * pulls as f64) as u64 {
-            e.observe(j, 0, Observation::Reward { value: 1.0 }).unwrap();
+            e.observe(j, 0, Observation::reward(1.0)).unwrap();
         }
     }
     e

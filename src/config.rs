@@ -10,7 +10,7 @@ use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
-use crate::core::{Experiment, ExperimentSpec, Bounds, PolicyName, PolicySpec, RewardModel};
+use crate::core::{Bounds, Experiment, ExperimentSpec, PolicyName, PolicySpec, RewardModel, Window};
 use crate::event::valid_name;
 
 /// Default location of the configuration file.
@@ -155,8 +155,13 @@ pub struct Limits {
     /// Arms per experiment.
     pub arms_per_experiment: usize,
     /// Event ids remembered per input partition for dropping duplicates (at least the newest
-    /// this many, at most twice as many: see `stream::dedup`).
+    /// this many, at most twice as many: see `stream::recent`).
     pub duplicate_window: usize,
+    /// Impressions of experiments with an attribution window whose event time is remembered
+    /// per input partition (at least the newest this many, at most twice as many), so that a
+    /// reward naming only its `impression_id` is credited to its impression's time. 0 turns
+    /// it off; rewards that carry `impression_ts_ms` need none of it.
+    pub remembered_impressions: usize,
     /// How far in the future (seconds) an event time may lie.
     pub max_clock_skew_seconds: f64,
     /// Largest event accepted, in bytes.
@@ -169,6 +174,7 @@ impl Default for Limits {
             experiments: 10_000,
             arms_per_experiment: 64,
             duplicate_window: 10_000,
+            remembered_impressions: 50_000,
             max_clock_skew_seconds: 300.0,
             max_event_bytes: 16 * 1024,
         }
@@ -204,6 +210,10 @@ pub struct Defaults {
     #[serde(skip_serializing)]
     pub guardrails: Option<Bounds>,
     pub half_life_seconds: Option<f64>,
+    /// Attribution window: impressions count in the estimates once they are this many seconds
+    /// old, with the rewards that came for them meanwhile; later rewards are counted as late
+    /// and not applied. Off when unset (README, "Rewards that arrive late").
+    pub attribution_window_seconds: Option<f64>,
     /// Experiments created on first sight are retired after this many seconds without an
     /// impression (event time against the clock); off when unset.
     pub idle_retire_seconds: Option<f64>,
@@ -221,6 +231,7 @@ impl Default for Defaults {
             bounds: Bounds { floor: 0.01, ..Bounds::default() },
             guardrails: None,
             half_life_seconds: None,
+            attribution_window_seconds: None,
             idle_retire_seconds: None,
             retire_grace_seconds: 86_400.0,
         }
@@ -241,6 +252,8 @@ pub struct ExperimentConfig {
     #[serde(default, skip_serializing)]
     pub guardrails: Option<Bounds>,
     pub half_life_seconds: Option<f64>,
+    /// Over `defaults.attribution_window_seconds`.
+    pub attribution_window_seconds: Option<f64>,
     /// `false`: impressions of arms not in `arms` are dead-lettered `unknown-arm`.
     pub accept_new_arms: Option<bool>,
 }
@@ -470,6 +483,18 @@ impl Config {
         }
     }
 
+    /// The longest attribution window: 90 days (an arm's buckets are W/16 wide, so any window
+    /// costs the same memory; the bound keeps event-time arithmetic far from overflow).
+    const MAX_WINDOW_SECONDS: f64 = 90.0 * 86_400.0;
+
+    fn window(key: &str, v: Option<f64>) -> Result<Option<Window>, String> {
+        match v {
+            None => Ok(None),
+            Some(s) if (0.001..=Self::MAX_WINDOW_SECONDS).contains(&s) => Ok(Some(Window { ms: (s * 1000.0).round() as i64 })),
+            Some(s) => Err(format!("{key} = {s}; it must be a number of seconds from 0.001 to {} (90 days)", Self::MAX_WINDOW_SECONDS)),
+        }
+    }
+
     /// The spec of experiments created on first sight.
     pub fn resolve_default_spec(&self) -> Result<ExperimentSpec, String> {
         let d = &self.defaults;
@@ -480,6 +505,7 @@ impl Config {
             half_life_ms: Self::half_life_ms("half_life_seconds", d.half_life_seconds)?,
             max_arms: self.limits.arms_per_experiment,
             accept_new_arms: true,
+            attribution: Self::window("attribution_window_seconds", d.attribution_window_seconds)?,
         };
         Experiment::new(spec.clone(), &[])?;
         Ok(spec)
@@ -508,6 +534,7 @@ impl Config {
                 half_life_ms: Self::half_life_ms("half_life_seconds", e.half_life_seconds.or(d.half_life_seconds))?,
                 max_arms: self.limits.arms_per_experiment,
                 accept_new_arms: e.accept_new_arms.unwrap_or(true),
+                attribution: Self::window("attribution_window_seconds", e.attribution_window_seconds.or(d.attribution_window_seconds))?,
             },
         })
     }
@@ -607,6 +634,9 @@ impl fmt::Display for ResolvedExperiment {
         }
         if let Some(h) = self.spec.half_life_ms {
             write!(f, ", half-life {}s", h / 1000.0)?;
+        }
+        if let Some(w) = self.spec.attribution {
+            write!(f, ", attribution window {}s", w.ms as f64 / 1000.0)?;
         }
         if !self.spec.accept_new_arms {
             write!(f, ", no new arms")?;

@@ -36,10 +36,15 @@ pub enum Reason {
     UnknownArm,
     /// An event of an experiment whose definition in force retired it.
     RetiredExperiment,
+    /// A reward's `impression_id` that is empty or over 128 characters.
+    BadImpressionId,
+    /// A reward whose `impression_ts_ms` is later than its own time by more than the allowed
+    /// clock skew.
+    ImpressionAfterReward,
 }
 
 impl Reason {
-    pub const ALL: [Reason; 18] = [
+    pub const ALL: [Reason; 20] = [
         Reason::TooLarge,
         Reason::NotJson,
         Reason::NotObject,
@@ -58,6 +63,8 @@ impl Reason {
         Reason::TooManyArms,
         Reason::UnknownArm,
         Reason::RetiredExperiment,
+        Reason::BadImpressionId,
+        Reason::ImpressionAfterReward,
     ];
 
     pub fn code(self) -> &'static str {
@@ -80,6 +87,8 @@ impl Reason {
             Reason::TooManyArms => "too-many-arms",
             Reason::UnknownArm => "unknown-arm",
             Reason::RetiredExperiment => "retired-experiment",
+            Reason::BadImpressionId => "bad-impression-id",
+            Reason::ImpressionAfterReward => "impression-after-reward",
         }
     }
 }
@@ -113,6 +122,10 @@ pub struct Event<'a> {
     pub reward: f64,
     pub propensity: Option<f64>,
     pub weights_version: Option<u64>,
+    /// Rewards only: the `event_id` of the impression the reward is for.
+    pub impression_id: Option<Cow<'a, str>>,
+    /// Rewards only: the event time of the impression the reward is for.
+    pub impression_ts_ms: Option<i64>,
 }
 
 #[derive(Debug, Default, Deserialize, PartialEq)]
@@ -130,6 +143,9 @@ struct Raw<'a> {
     reward: Option<f64>,
     propensity: Option<f64>,
     weights_version: Option<u64>,
+    #[serde(borrow, default, deserialize_with = "borrowed")]
+    impression_id: Option<Cow<'a, str>>,
+    impression_ts_ms: Option<i64>,
 }
 
 /// An optional string borrowed from the message when it has no escapes. (serde's own
@@ -298,7 +314,7 @@ fn validate<'a>(bytes: &'a [u8], mut raw: Raw<'a>, taken: bool, now_ms: i64, max
     }
     let (count, reward) = match kind {
         Kind::Impression => {
-            if raw.reward.is_some() {
+            if raw.reward.is_some() || raw.impression_id.is_some() || raw.impression_ts_ms.is_some() {
                 return Err(Reason::MisplacedField);
             }
             match raw.count {
@@ -321,6 +337,14 @@ fn validate<'a>(bytes: &'a [u8], mut raw: Raw<'a>, taken: bool, now_ms: i64, max
     if ts_ms > now_ms.saturating_add(max_skew_ms) {
         return Err(Reason::FutureTime);
     }
+    if let Some(id) = &raw.impression_id {
+        if id.is_empty() || (id.len() > 128 && id.chars().count() > 128) {
+            return Err(Reason::BadImpressionId);
+        }
+    }
+    if raw.impression_ts_ms.is_some_and(|t| t > ts_ms.saturating_add(max_skew_ms)) {
+        return Err(Reason::ImpressionAfterReward);
+    }
     Ok(Event {
         event_id,
         kind,
@@ -331,6 +355,8 @@ fn validate<'a>(bytes: &'a [u8], mut raw: Raw<'a>, taken: bool, now_ms: i64, max
         reward,
         propensity: raw.propensity,
         weights_version: raw.weights_version,
+        impression_id: raw.impression_id,
+        impression_ts_ms: raw.impression_ts_ms,
     })
 }
 
@@ -349,6 +375,15 @@ mod tests {
     }
 
     #[test]
+    fn a_reward_names_its_impression_by_id_and_by_time() {
+        let text = format!(r#"{{"event_id":"rew-1","kind":"reward","experiment":"x","arm":"a","ts_ms":{NOW},"impression_id":"imp-1","impression_ts_ms":{}}}"#, NOW - 4_000);
+        let e = check(&text).unwrap();
+        assert_eq!((e.impression_id.as_deref(), e.impression_ts_ms), (Some("imp-1"), Some(NOW - 4_000)));
+        // A little after the reward is clock skew between services, not an error.
+        assert!(check(&format!(r#"{{"event_id":"rew-2","kind":"reward","experiment":"x","arm":"a","ts_ms":{NOW},"impression_ts_ms":{}}}"#, NOW + 1_000)).is_ok());
+    }
+
+    #[test]
     fn accepts_the_examples_of_the_contract() {
         let e = check(r#"{"event_id":"imp-8f2c01","kind":"impression","experiment":"thumb-style","arm":"warm","ts_ms":1764547200000,"count":1,"propensity":0.25,"weights_version":17}"#).unwrap();
         assert_eq!((e.kind, e.count, e.weights_version), (Kind::Impression, 1, Some(17)));
@@ -361,6 +396,7 @@ mod tests {
         let base = |extra: &str| {
             format!(r#"{{"event_id":"e1","kind":"impression","experiment":"x","arm":"a","ts_ms":{NOW}{extra}}}"#)
         };
+        let reward = |extra: &str| format!(r#"{{"event_id":"r1","kind":"reward","experiment":"x","arm":"a","ts_ms":{NOW}{extra}}}"#);
         let cases: Vec<(String, Reason)> = vec![
             ("not json".into(), Reason::NotJson),
             ("[1,2]".into(), Reason::NotObject),
@@ -375,6 +411,13 @@ mod tests {
             (base(r#","reward":1"#), Reason::MisplacedField),
             (base(r#","propensity":0"#), Reason::BadPropensity),
             (format!(r#"{{"event_id":"e","kind":"impression","experiment":"x","arm":"a","ts_ms":{}}}"#, NOW + 3_600_000), Reason::FutureTime),
+            (base(r#","impression_id":"e0""#), Reason::MisplacedField),
+            (base(r#","impression_ts_ms":1"#), Reason::MisplacedField),
+            (reward(r#","impression_id":"""#), Reason::BadImpressionId),
+            (reward(&format!(r#","impression_id":"{}""#, "i".repeat(129))), Reason::BadImpressionId),
+            (reward(r#","impression_id":7"#), Reason::WrongType),
+            (reward(r#","impression_ts_ms":1.5"#), Reason::WrongType),
+            (reward(&format!(r#","impression_ts_ms":{}"#, NOW + 3_600_000)), Reason::ImpressionAfterReward),
         ];
         for (input, reason) in cases {
             assert_eq!(check(&input).map(|_| ()), Err(reason), "{input}");

@@ -38,7 +38,7 @@ fn apply(exp: &mut Experiment, arms: &[ArmHistory], ts: i64) {
             exp.observe(j, ts, Observation::Impression { count: a.pulls }).expect("impression");
         }
         for _ in 0..a.successes + a.excess {
-            exp.observe(j, ts, Observation::Reward { value: 1.0 }).expect("0/1 reward");
+            exp.observe(j, ts, Observation::reward(1.0)).expect("0/1 reward");
         }
     }
 }
@@ -427,7 +427,7 @@ fn replay_events(spec: &ExperimentSpec, events: &[Event]) -> Experiment {
                     RewardModel::Bernoulli => f64::from(u8::from(fraction >= 0.5)),
                     RewardModel::Bounded { max } => fraction * max,
                 };
-                (arm, ts, Observation::Reward { value })
+                (arm, ts, Observation::reward(value))
             }
         };
         // A reward for an arm with no impressions yet is refused; refusals are part of what
@@ -558,11 +558,11 @@ fn a_future_stamped_event_on_one_arm_does_not_shift_that_arm_against_the_others(
     for j in 0..2 {
         e.observe(j, 0, Observation::Impression { count: 40 }).expect("impression");
         for _ in 0..10 {
-            e.observe(j, 0, Observation::Reward { value: 1.0 }).expect("reward");
+            e.observe(j, 0, Observation::reward(1.0)).expect("reward");
         }
     }
     // A reward of 0 stamped two half-lives ahead of the clock, on arm 0 only.
-    e.observe(0, 3000, Observation::Reward { value: 0.0 }).expect("reward");
+    e.observe(0, 3000, Observation::reward(0.0)).expect("reward");
     let inputs = e.inputs(1000);
     assert!((inputs[0].pulls - inputs[1].pulls).abs() < 1e-12, "pulls {} vs {}", inputs[0].pulls, inputs[1].pulls);
     // Both discounted to the newest event time, 3000 ms: 40·2^(−3) (arithmetic).
@@ -578,11 +578,11 @@ fn the_regret_estimate_under_decay_counts_pulls_and_means_alike() {
     e.observe(1, 0, Observation::Impression { count: 100 }).expect("impression");
     e.observe(1, 10_000, Observation::Impression { count: 10 }).expect("impression");
     for _ in 0..10 {
-        e.observe(1, 10_000, Observation::Reward { value: 1.0 }).expect("reward");
+        e.observe(1, 10_000, Observation::reward(1.0)).expect("reward");
     }
     e.observe(0, 10_000, Observation::Impression { count: 50 }).expect("impression");
     for _ in 0..25 {
-        e.observe(0, 10_000, Observation::Reward { value: 1.0 }).expect("reward");
+        e.observe(0, 10_000, Observation::reward(1.0)).expect("reward");
     }
     let r = e.report(10_000);
     // Arm 1's discounted mean: 10 / (10 + 100·2^(−10)) (arithmetic), above arm 0's 25/50: arm 1

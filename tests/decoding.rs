@@ -9,7 +9,7 @@ use std::path::{Path, PathBuf};
 
 use apportion::core::{Experiment, ExperimentSpec, Observation, PolicyName, PolicySpec, RewardModel};
 use apportion::event::{self, valid_name, Kind, Reason};
-use apportion::stream::dedup::DedupWindow;
+use apportion::stream::recent::DedupWindow;
 use apportion::stream::snapshot::{self, Counters, Snapshot};
 use proptest::prelude::*;
 use proptest::test_runner::{Config as ProptestConfig, TestRunner};
@@ -401,7 +401,7 @@ fn sample_snapshot() -> Snapshot {
     for (j, (pulls, rewards)) in [(120u64, 9), (80, 4), (40, 1)].into_iter().enumerate() {
         clicks.observe(j, t0 + j as i64, Observation::Impression { count: pulls }).expect("impression");
         for _ in 0..rewards {
-            clicks.observe(j, t0 + 500, Observation::Reward { value: 1.0 }).expect("reward");
+            clicks.observe(j, t0 + 500, Observation::reward(1.0)).expect("reward");
         }
     }
     clicks.commit(&[0.5, 0.25, 0.25]);
@@ -410,7 +410,7 @@ fn sample_snapshot() -> Snapshot {
         Experiment::new(ExperimentSpec::new(PolicySpec::new(PolicyName::Ucb1), RewardModel::Bounded { max: 60.0 }), &names(&["short", "long"]))
             .expect("experiment");
     watch.observe(0, t0, Observation::Impression { count: 10 }).expect("impression");
-    watch.observe(0, t0 + 10, Observation::Reward { value: 42.5 }).expect("reward");
+    watch.observe(0, t0 + 10, Observation::reward(42.5)).expect("reward");
     watch.commit(&[0.5, 0.5]);
     let late = watch.arm_or_add("late").expect("third arm");
     watch.observe(late, t0 + 20, Observation::Impression { count: 1 }).expect("impression");
@@ -429,6 +429,7 @@ fn sample_snapshot() -> Snapshot {
         version_floor: 0,
         experiments: [("clicks".to_string(), clicks.state()), ("watch".to_string(), watch.state())].into_iter().collect(),
         duplicates,
+        impressions: Vec::new(),
         counters: Counters {
             events: [("impression/applied", 254u64), ("reward/applied", 15), ("unknown/rejected", 2)]
                 .into_iter()
@@ -437,6 +438,7 @@ fn sample_snapshot() -> Snapshot {
             dead_letters: [("not-json".to_string(), 2u64)].into_iter().collect(),
             split: BTreeMap::new(),
             unmatched_rewards: BTreeMap::new(),
+            ..Counters::default()
         },
     }
 }
@@ -601,7 +603,7 @@ fn a_snapshot_of_any_accepted_reward_reads_back() {
         let Ok(mut e) = Experiment::new(spec, &["a".to_string()]) else { continue };
         let json = format!(r#"{{"event_id":"r","kind":"reward","experiment":"x","arm":"a","ts_ms":0,"reward":{max:e}}}"#);
         let ev = event::decode(json.as_bytes(), MAX_BYTES, NOW, SKEW_MS).expect("decodes");
-        if e.observe(0, ev.ts_ms, Observation::Reward { value: ev.reward }).is_err() {
+        if e.observe(0, ev.ts_ms, Observation::reward(ev.reward)).is_err() {
             continue;
         }
         e.observe(0, ev.ts_ms, Observation::Impression { count: 1 }).expect("impression");

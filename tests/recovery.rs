@@ -327,6 +327,7 @@ fn resuming_inside_a_record_batch_applies_the_rest_of_that_batch() {
         version_floor: 0,
         experiments: BTreeMap::new(),
         duplicates: Vec::new(),
+        impressions: Vec::new(),
         counters: Counters::default(),
     };
     let key = snapshot::key(&cfg.kafka.input_topic, 0);

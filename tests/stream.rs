@@ -23,9 +23,7 @@ fn declare(id: &str, arms: &[&str], policy: PolicyName, reward: RewardModel, flo
         policy: Some(PolicySpec::new(policy)),
         reward: Some(reward),
         bounds: Some(Bounds { floor, ..Bounds::default() }),
-        guardrails: None,
-        half_life_seconds: None,
-        accept_new_arms: None,
+        ..ExperimentConfig::default()
     }
 }
 
@@ -56,7 +54,7 @@ fn direct(spec: ExperimentSpec, arms: &[&str], messages: &[(String, Vec<u8>)], e
         let obs = if v["kind"] == "impression" {
             Observation::Impression { count: 1 }
         } else {
-            Observation::Reward { value: v["reward"].as_f64().unwrap() }
+            Observation::reward(v["reward"].as_f64().unwrap())
         };
         e.observe(arm, ts, obs).unwrap();
     }

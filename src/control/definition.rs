@@ -36,7 +36,7 @@ pub struct Definition {
     pub bounds: Option<Bounds>,
     #[serde(default)]
     pub half_life_seconds: Option<f64>,
-    /// Checked and kept; the sidecar does not attribute rewards by window yet.
+    /// Over `defaults.attribution_window_seconds` when absent or null.
     #[serde(default)]
     pub attribution_window_seconds: Option<f64>,
     /// The arm others are compared with; checked and kept.
@@ -101,6 +101,7 @@ impl Definition {
             bounds: self.bounds.clone(),
             guardrails: None,
             half_life_seconds: self.half_life_seconds,
+            attribution_window_seconds: self.attribution_window_seconds,
             accept_new_arms: self.accept_new_arms,
         }
     }
@@ -118,7 +119,7 @@ impl Definition {
             reward: e.reward,
             bounds: e.bounds.clone(),
             half_life_seconds: e.half_life_seconds,
-            attribution_window_seconds: None,
+            attribution_window_seconds: e.attribution_window_seconds,
             control_arm: None,
             winner: None,
             changed_by: None,
@@ -161,11 +162,6 @@ impl Definition {
         }
         if let Some(c) = &self.control_arm {
             named("control_arm", c)?;
-        }
-        if let Some(w) = self.attribution_window_seconds {
-            if !(w.is_finite() && w > 0.0) {
-                return Err(format!("definition ({id}).attribution_window_seconds = {w}; it must be a number of seconds > 0"));
-            }
         }
         for (key, v, most) in [("changed_by", &self.changed_by, MAX_BY), ("note", &self.note, MAX_NOTE)] {
             if let Some(v) = v {

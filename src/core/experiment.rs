@@ -3,6 +3,7 @@
 use rustc_hash::FxHashMap;
 use serde::{Deserialize, Serialize};
 
+use super::attribution::{Bucket, Pending, Window};
 use super::bounds::Bounds;
 use super::interval::clamp_sum;
 use super::lifecycle::{Lifecycle, State};
@@ -25,6 +26,10 @@ pub struct ExperimentSpec {
     /// refused as `unknown-arm`. Only meaningful with declared arms.
     #[serde(default = "accept_by_default")]
     pub accept_new_arms: bool,
+    /// Attribution window: estimates count an impression only once it has matured, with the
+    /// rewards attributed to it (`core::attribution`). `None`: every pull counts at once.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub attribution: Option<Window>,
 }
 
 fn accept_by_default() -> bool {
@@ -33,7 +38,7 @@ fn accept_by_default() -> bool {
 
 impl ExperimentSpec {
     pub fn new(policy: PolicySpec, reward: RewardModel) -> Self {
-        ExperimentSpec { policy, reward, bounds: Bounds::default(), half_life_ms: None, max_arms: usize::MAX, accept_new_arms: true }
+        ExperimentSpec { policy, reward, bounds: Bounds::default(), half_life_ms: None, max_arms: usize::MAX, accept_new_arms: true, attribution: None }
     }
 }
 
@@ -42,8 +47,28 @@ impl ExperimentSpec {
 pub enum Observation {
     /// `count` impressions (pulls).
     Impression { count: u64 },
-    /// One reward of `value` reward units.
-    Reward { value: f64 },
+    /// One reward of `value` reward units, for an impression made at `impression_ms` when the
+    /// event says (under an attribution window the reward is credited to that impression;
+    /// otherwise to one made at the reward's own time).
+    Reward { value: f64, impression_ms: Option<i64> },
+}
+
+impl Observation {
+    /// A reward that names no impression.
+    pub fn reward(value: f64) -> Observation {
+        Observation::Reward { value, impression_ms: None }
+    }
+}
+
+/// What became of an observation the experiment took.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Credit {
+    /// In the estimates now.
+    Counted,
+    /// Waiting in the attribution window; in the estimates once its impression matures.
+    Pending,
+    /// A reward that came after its impression's window closed: counted, not applied.
+    Late,
 }
 
 /// Why the core refused an observation. The source turns these into dead letters.
@@ -89,6 +114,10 @@ pub struct ExperimentState {
     /// Arms a definition took out: their statistics stay, they get no weight.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub removed: Vec<String>,
+    /// The attribution clock: the newest event time applied (absent before any event, and in
+    /// snapshots of older writers).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub clock_ms: Option<i64>,
 }
 
 #[derive(Debug)]
@@ -106,6 +135,9 @@ pub struct Experiment {
     removed: Vec<bool>,
     /// The arms the definition names (empty: arms join on first sight).
     declared: Vec<String>,
+    /// The newest event time applied under an attribution window: what matures impressions
+    /// (kept only while there is a window).
+    clock_ms: Option<i64>,
 }
 
 impl Experiment {
@@ -125,6 +157,7 @@ impl Experiment {
             lifecycle: Lifecycle::default(),
             removed: Vec::new(),
             declared: Vec::new(),
+            clock_ms: None,
         };
         for a in arms {
             e.arm_or_add(a).map_err(|r| format!("arm {a:?}: {r}"))?;
@@ -147,6 +180,7 @@ impl Experiment {
             e.stats[j] = stats;
         }
         e.version = state.version;
+        e.clock_ms = state.clock_ms;
         e.last_weights = vec![f64::NAN; e.names.len()];
         for (j, w) in state.last_weights.into_iter().enumerate().take(e.names.len()) {
             e.last_weights[j] = w.unwrap_or(f64::NAN);
@@ -168,7 +202,11 @@ impl Experiment {
         spec.reward.validate()?;
         spec.bounds.validate(arms)?;
         self.policy = spec.policy.build()?;
+        if spec.attribution != self.spec.attribution {
+            self.rebucket(spec.attribution, spec.half_life_ms);
+        }
         self.spec = spec;
+        self.mature();
         for a in arms {
             if !self.index.contains_key(a) {
                 self.push_arm(a.clone());
@@ -180,6 +218,22 @@ impl Experiment {
         self.declared = arms.to_vec();
         self.lifecycle = self.lifecycle.followed_by(lifecycle, changed_at_ms);
         Ok(())
+    }
+
+    /// Carries pending impressions over to a new attribution window: each old bucket goes to
+    /// the new bucket its start falls in, so nothing pending is lost or counted early; with no
+    /// window any more, everything pending counts at once.
+    fn rebucket(&mut self, to: Option<Window>, half_life: Option<f64>) {
+        let Some(from) = self.spec.attribution else { return };
+        for s in &mut self.stats {
+            let mut old = std::mem::take(&mut s.pending);
+            let mut moved = Pending::default();
+            old.mature(i64::MAX, |b| match to {
+                Some(to) => moved.add_sums(to.bucket(from.start_ms(b.index)), b),
+                None => s.absorb(b, from.start_ms(b.index), half_life),
+            });
+            s.pending = moved;
+        }
     }
 
     /// Retires the experiment of its own accord (idle for too long) at `now_ms`.
@@ -214,6 +268,7 @@ impl Experiment {
             last_weights: self.last_weights.iter().map(|w| w.is_finite().then_some(*w)).collect(),
             lifecycle: self.lifecycle.clone(),
             removed: self.names.iter().zip(&self.removed).filter(|(_, r)| **r).map(|(n, _)| n.clone()).collect(),
+            clock_ms: self.clock_ms,
         }
     }
 
@@ -282,8 +337,8 @@ impl Experiment {
 
     /// Applies one observation of the arm called `name`, adding the arm only for an impression
     /// and only once nothing else can refuse it: a refused observation leaves the experiment
-    /// exactly as it was. Returns the arm's index. O(1).
-    pub fn apply(&mut self, name: &str, ts_ms: i64, obs: Observation) -> Result<usize, Refusal> {
+    /// exactly as it was. Returns the arm's index and what became of the observation. O(1).
+    pub fn apply(&mut self, name: &str, ts_ms: i64, obs: Observation) -> Result<(usize, Credit), Refusal> {
         if self.lifecycle.state == State::Retired {
             return Err(Refusal::Retired);
         }
@@ -294,32 +349,84 @@ impl Experiment {
                 return Err(Refusal::UndeclaredArm)
             }
             (Some(&j), _) => j,
-            (None, Observation::Reward { value }) if !self.spec.reward.accepts(value) => return Err(Refusal::RewardOutOfRange),
+            (None, Observation::Reward { value, .. }) if !self.spec.reward.accepts(value) => return Err(Refusal::RewardOutOfRange),
             (None, Observation::Reward { .. }) => return Err(Refusal::UnknownArm),
             (None, Observation::Impression { .. }) => self.arm_or_add(name)?,
         };
-        self.observe(arm, ts_ms, obs)?;
-        Ok(arm)
+        let credit = self.observe(arm, ts_ms, obs)?;
+        Ok((arm, credit))
     }
 
     /// Applies one observation of arm `arm` made at event time `ts_ms`, or refuses it and
     /// changes nothing: a reward outside the reward range, or for an arm with no impressions
     /// yet. O(1).
-    pub fn observe(&mut self, arm: usize, ts_ms: i64, obs: Observation) -> Result<(), Refusal> {
+    ///
+    /// Under an attribution window W, a reward is credited to its impression's bucket (the
+    /// impression's time when the event names it, clamped to the reward's own time; else the
+    /// reward's own time), and a reward more than W after its impression is late: counted by
+    /// the caller, not applied. Each call first matures the arm's buckets to the clock, so
+    /// an arm holds at most `attribution::BUCKETS + 2` of them.
+    pub fn observe(&mut self, arm: usize, ts_ms: i64, obs: Observation) -> Result<Credit, Refusal> {
         let half_life = self.spec.half_life_ms;
-        match obs {
-            Observation::Impression { count } => self.stats[arm].add_pulls(count, ts_ms, half_life),
-            Observation::Reward { value } => {
-                if !self.spec.reward.accepts(value) {
-                    return Err(Refusal::RewardOutOfRange);
-                }
-                if self.stats[arm].pulls_total == 0 {
-                    return Err(Refusal::UnknownArm);
-                }
-                self.stats[arm].add_reward(value, ts_ms, half_life)
+        if let Observation::Reward { value, .. } = obs {
+            if !self.spec.reward.accepts(value) {
+                return Err(Refusal::RewardOutOfRange);
+            }
+            if self.stats[arm].pulls_total == 0 {
+                return Err(Refusal::UnknownArm);
             }
         }
-        Ok(())
+        let Some(window) = self.spec.attribution else {
+            match obs {
+                Observation::Impression { count } => self.stats[arm].add_pulls(count, ts_ms, half_life),
+                Observation::Reward { value, .. } => self.stats[arm].add_reward(value, ts_ms, half_life),
+            }
+            return Ok(Credit::Counted);
+        };
+        let clock = self.clock_ms.map_or(ts_ms, |c| c.max(ts_ms));
+        self.clock_ms = Some(clock);
+        let below = window.matured_below(clock);
+        let s = &mut self.stats[arm];
+        s.mature(window, below, half_life);
+        let (at_ms, pulls, value) = match obs {
+            Observation::Impression { count } => {
+                s.count_pulls(count, ts_ms);
+                (ts_ms, count, 0.0)
+            }
+            Observation::Reward { value, impression_ms } => {
+                let at_ms = impression_ms.map_or(ts_ms, |i| i.min(ts_ms));
+                if window.is_late(ts_ms, at_ms) {
+                    return Ok(Credit::Late);
+                }
+                s.reward_total += value;
+                (at_ms, 0, value)
+            }
+        };
+        let k = window.bucket(at_ms);
+        if k < below {
+            let bucket = Bucket { index: k, pulls, reward: value, reward_sq: value * value };
+            s.absorb(&bucket, window.start_ms(k), half_life);
+            Ok(Credit::Counted)
+        } else {
+            s.pending.add(k, pulls, value);
+            Ok(Credit::Pending)
+        }
+    }
+
+    /// Matures every arm's pending impressions to the attribution clock (nothing to do without
+    /// a window): done before the figures of a publish are taken, so that an arm with no
+    /// events of late counts what has matured meanwhile.
+    pub fn mature(&mut self) {
+        let (Some(window), Some(clock)) = (self.spec.attribution, self.clock_ms) else { return };
+        let below = window.matured_below(clock);
+        for s in &mut self.stats {
+            s.mature(window, below, self.spec.half_life_ms);
+        }
+    }
+
+    /// The attribution clock: the newest event time applied.
+    pub fn clock_ms(&self) -> Option<i64> {
+        self.clock_ms
     }
 
     /// What the policy sees, as of `now_ms`.
@@ -422,6 +529,7 @@ impl Experiment {
 
     /// Computes the weights for the next `batch` impressions and commits them.
     pub fn allocate(&mut self, now_ms: i64, batch: u64) -> Allocation {
+        self.mature();
         let weights = self.weights(now_ms, batch);
         let version = self.commit(&weights);
         Allocation { version, weights, report: self.report(now_ms) }
@@ -431,7 +539,7 @@ impl Experiment {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::core::{PolicyName, PolicySpec};
+    use crate::core::{PolicyName, PolicySpec, Window};
 
     fn thompson(arms: &[&str]) -> Experiment {
         let arms: Vec<String> = arms.iter().map(|a| a.to_string()).collect();
@@ -442,15 +550,15 @@ mod tests {
     fn a_refused_reward_for_a_new_arm_leaves_no_arm_behind() {
         let mut e = thompson(&["a", "b"]);
         let before = e.state();
-        assert_eq!(e.apply("ghost", 1, Observation::Reward { value: 5.0 }), Err(Refusal::RewardOutOfRange));
-        assert_eq!(e.apply("ghost", 1, Observation::Reward { value: 1.0 }), Err(Refusal::UnknownArm));
+        assert_eq!(e.apply("ghost", 1, Observation::reward(5.0)), Err(Refusal::RewardOutOfRange));
+        assert_eq!(e.apply("ghost", 1, Observation::reward(1.0)), Err(Refusal::UnknownArm));
         assert_eq!(e.state(), before);
         assert_eq!(e.arm("ghost"), None);
         // 300 valid events later the weights cover the declared arms alone.
         for i in 0..150 {
             let arm = if i % 2 == 0 { "a" } else { "b" };
             e.apply(arm, i, Observation::Impression { count: 1 }).expect("impression");
-            e.apply(arm, i, Observation::Reward { value: (i % 3 == 0) as u8 as f64 }).expect("reward");
+            e.apply(arm, i, Observation::reward((i % 3 == 0) as u8 as f64)).expect("reward");
         }
         assert_eq!(e.arm_names(), ["a", "b"]);
         assert_eq!(e.weights(300, 1).len(), 2);
@@ -460,10 +568,10 @@ mod tests {
     fn a_reward_for_an_arm_without_impressions_is_refused_and_changes_nothing() {
         let mut e = thompson(&["a"]);
         let before = e.state();
-        assert_eq!(e.observe(0, 5, Observation::Reward { value: 1.0 }), Err(Refusal::UnknownArm));
+        assert_eq!(e.observe(0, 5, Observation::reward(1.0)), Err(Refusal::UnknownArm));
         assert_eq!(e.state(), before);
         e.apply("a", 6, Observation::Impression { count: 1 }).expect("impression");
-        assert_eq!(e.apply("a", 7, Observation::Reward { value: 1.0 }), Ok(0));
+        assert_eq!(e.apply("a", 7, Observation::reward(1.0)), Ok((0, Credit::Counted)));
         assert_eq!(e.arm_stats()[0].reward_total, 1.0);
     }
 
@@ -473,7 +581,7 @@ mod tests {
                 if e.arm(arm).is_some() {
                     e.apply(arm, i, Observation::Impression { count: 1 }).expect("impression");
                     if (i + j as i64) % 3 == 0 {
-                        e.apply(arm, i, Observation::Reward { value: 1.0 }).expect("reward");
+                        e.apply(arm, i, Observation::reward(1.0)).expect("reward");
                     }
                 }
             }
@@ -555,7 +663,95 @@ mod tests {
     #[test]
     fn an_impression_of_a_new_arm_adds_it() {
         let mut e = thompson(&[]);
-        assert_eq!(e.apply("fresh", 1, Observation::Impression { count: 3 }), Ok(0));
+        assert_eq!(e.apply("fresh", 1, Observation::Impression { count: 3 }), Ok((0, Credit::Counted)));
         assert_eq!(e.arm_stats()[0].pulls_total, 3);
+    }
+
+    fn windowed(window_ms: i64, half_life_ms: Option<f64>) -> Experiment {
+        let mut spec = ExperimentSpec::new(PolicySpec::new(PolicyName::Thompson), RewardModel::Bernoulli);
+        spec.attribution = Some(Window { ms: window_ms });
+        spec.half_life_ms = half_life_ms;
+        Experiment::new(spec, &["a".into()]).expect("valid experiment")
+    }
+
+    fn reward_for(impression_ms: i64) -> Observation {
+        Observation::Reward { value: 1.0, impression_ms: Some(impression_ms) }
+    }
+
+    #[test]
+    fn under_a_window_a_pull_counts_once_it_has_matured_with_the_rewards_credited_to_it() {
+        // W = 16 s: buckets of 1 s.
+        let mut e = windowed(16_000, None);
+        assert_eq!(e.apply("a", 0, Observation::Impression { count: 10 }), Ok((0, Credit::Pending)));
+        assert_eq!(e.apply("a", 3_000, reward_for(0)), Ok((0, Credit::Pending)));
+        assert_eq!(e.apply("a", 5_000, Observation::Impression { count: 10 }), Ok((0, Credit::Pending)));
+        e.mature();
+        let s = &e.arm_stats()[0];
+        assert_eq!((s.pulls, s.reward, s.pulls_total, s.pending.pulls()), (0.0, 0.0, 20, 20));
+        // At 17 s the first bucket has matured (its last instant, 999 ms, is 16 s old).
+        assert_eq!(e.apply("a", 17_000, reward_for(4_000)), Ok((0, Credit::Pending)));
+        let s = &e.arm_stats()[0];
+        assert_eq!((s.pulls, s.reward, s.matured_pulls(), s.matured_reward()), (10.0, 1.0, 10, 1.0));
+        // A reward within its window for a matured impression goes straight in.
+        assert_eq!(e.apply("a", 16_000, reward_for(500)), Ok((0, Credit::Counted)));
+        assert_eq!(e.arm_stats()[0].reward, 2.0);
+        let r = e.report(17_000);
+        assert_eq!((r.arms[0].pulls, r.arms[0].pending_pulls), (20, 10));
+        assert!((r.arms[0].mean - 0.2).abs() < 1e-12, "2 rewards over 10 matured pulls: {}", r.arms[0].mean);
+    }
+
+    #[test]
+    fn a_reward_after_its_window_closed_is_late_and_changes_no_figure() {
+        let mut e = windowed(16_000, None);
+        e.apply("a", 0, Observation::Impression { count: 4 }).expect("impression");
+        e.apply("a", 20_000, Observation::Impression { count: 1 }).expect("impression");
+        let before = e.state();
+        assert_eq!(e.apply("a", 16_001, reward_for(0)), Ok((0, Credit::Late)));
+        assert_eq!(e.state(), before, "a late reward older than the clock leaves everything as it was");
+        // A reward naming no impression is credited at its own time: never late.
+        assert_eq!(e.apply("a", 20_000, Observation::reward(1.0)), Ok((0, Credit::Pending)));
+        // An impression time after the reward's own is clamped to it.
+        assert_eq!(e.apply("a", 20_000, reward_for(25_000)), Ok((0, Credit::Pending)));
+        assert_eq!(e.arm_stats()[0].pending.reward(), 2.0);
+    }
+
+    #[test]
+    fn under_decay_an_impression_and_its_rewards_are_discounted_from_the_impression_time() {
+        let h = Some(8_000.0);
+        let mut e = windowed(16_000, h);
+        e.apply("a", 0, Observation::Impression { count: 8 }).expect("impression");
+        e.apply("a", 15_000, reward_for(0)).expect("reward");
+        e.apply("a", 15_000, reward_for(0)).expect("reward");
+        e.apply("a", 40_000, Observation::Impression { count: 1 }).expect("impression");
+        let s = &e.arm_stats()[0];
+        // One bucket matured, discounted alike: the mean is 2/8 whatever the weight.
+        assert!((s.reward / s.pulls - 0.25).abs() < 1e-12, "{} / {}", s.reward, s.pulls);
+        let (n, r, _) = s.at(40_000, h);
+        assert!((n - 8.0 * 0.5f64.powi(5)).abs() < 1e-9 && (r / n - 0.25).abs() < 1e-12, "{n} {r}");
+    }
+
+    #[test]
+    fn pending_impressions_survive_a_snapshot_and_a_change_of_window() {
+        let mut e = windowed(16_000, None);
+        for t in 0..40 {
+            e.apply("a", t * 500, Observation::Impression { count: 1 }).expect("impression");
+            e.apply("a", t * 500 + 200, reward_for(t * 500)).expect("reward");
+        }
+        let spec = e.spec().clone();
+        let restored = Experiment::restore(spec.clone(), &["a".into()], e.state()).expect("restore");
+        assert_eq!(restored.state(), e.state());
+        assert_eq!(restored.clock_ms(), Some(19_700));
+        let (pulls, pending) = (e.arm_stats()[0].pulls_total, e.arm_stats()[0].pending.pulls());
+        // A longer window keeps every pending pull pending, under the new buckets.
+        let mut longer = spec.clone();
+        longer.attribution = Some(Window { ms: 64_000 });
+        e.redefine(longer, &["a".into()], state(State::Learning, 1), 1).expect("valid");
+        assert_eq!((e.arm_stats()[0].pulls_total, e.arm_stats()[0].pending.pulls()), (pulls, pending));
+        // No window any more: everything pending counts at once.
+        let mut none = spec;
+        none.attribution = None;
+        e.redefine(none, &["a".into()], state(State::Learning, 2), 2).expect("valid");
+        let s = &e.arm_stats()[0];
+        assert_eq!((s.pulls, s.reward, s.pending.len()), (40.0, 40.0, 0));
     }
 }

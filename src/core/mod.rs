@@ -5,6 +5,7 @@
 //! deterministic, so replaying the same events gives the same state bit for bit. The sidecar
 //! and the simulator use this module as it is.
 
+pub mod attribution;
 pub mod beta;
 pub mod draw;
 pub mod experiment;
@@ -17,7 +18,8 @@ pub mod report;
 pub mod reward;
 pub mod stats;
 
-pub use experiment::{Allocation, Experiment, ExperimentSpec, ExperimentState, Observation, Refusal};
+pub use attribution::Window;
+pub use experiment::{Allocation, Credit, Experiment, ExperimentSpec, ExperimentState, Observation, Refusal};
 pub use bounds::Bounds;
 pub use lifecycle::{Lifecycle, State};
 pub use policy::{Policy, PolicyName, PolicySpec};

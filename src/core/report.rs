@@ -10,8 +10,11 @@ use super::stats::{reference_ms, ArmStats, HalfLife};
 /// What is reported of one arm.
 #[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct ArmReport {
-    /// Undiscounted pulls ever applied.
+    /// Undiscounted pulls ever applied, matured and pending.
     pub pulls: u64,
+    /// Of `pulls`, those whose impressions have not matured under the attribution window (0
+    /// without a window): not yet in the mean, the interval or the policy's inputs.
+    pub pending_pulls: u64,
     /// Undiscounted reward ever applied, in reward units.
     pub reward: f64,
     /// Estimated mean reward (discounted when decay is on), in reward units.
@@ -26,6 +29,10 @@ pub struct ArmReport {
 }
 
 impl ArmReport {
+    pub fn matured_pulls(&self) -> u64 {
+        self.pulls - self.pending_pulls
+    }
+
     pub fn width(&self) -> f64 {
         self.ci_high - self.ci_low
     }
@@ -41,7 +48,7 @@ pub struct Report {
     /// Σⱼ nⱼ·(μ̄* − μ̄ⱼ) in reward units: an estimate of the pseudo-regret so far, taken with
     /// the estimates of the moment (so it can move down as well as up). nⱼ counts every pull
     /// ever made and μ̄ⱼ is the arm's all-time mean (μ̄* the largest), so pulls and means are
-    /// counted alike: without decay μ̄ⱼ is the reported mean and μ̄* the leader's; under decay
+    /// counted alike (under an attribution window, matured pulls and their rewards only): without decay μ̄ⱼ is the reported mean and μ̄* the leader's; under decay
     /// the discounted means, which follow drift, drive the policy and the leader, but pricing
     /// every pull ever made at a gap seen through recent traffic alone would mix two different
     /// counts.
@@ -72,6 +79,7 @@ pub fn report(stats: &[ArmStats], model: RewardModel, now_ms: i64, half_life: Ha
             let (mean, ci) = estimate(s, model, reference, half_life);
             ArmReport {
                 pulls: s.pulls_total,
+                pending_pulls: s.pending.pulls(),
                 reward: s.reward_total,
                 mean,
                 ci_low: ci.low,
@@ -84,7 +92,7 @@ pub fn report(stats: &[ArmStats], model: RewardModel, now_ms: i64, half_life: Ha
         .collect();
     let mut leader: Option<usize> = None;
     for (j, a) in arms.iter().enumerate() {
-        if a.pulls > 0 && leader.is_none_or(|l| a.mean > arms[l].mean) {
+        if a.matured_pulls() > 0 && leader.is_none_or(|l| a.mean > arms[l].mean) {
             leader = Some(j);
         }
     }
@@ -97,14 +105,14 @@ pub fn report(stats: &[ArmStats], model: RewardModel, now_ms: i64, half_life: Ha
         let all_time: Vec<Option<f64>> = stats
             .iter()
             .map(|s| {
-                let n = s.pulls_total as f64;
-                (n > 0.0).then(|| clamp_sum(n, s.reward_total, model.max()) / n)
+                let n = s.matured_pulls() as f64;
+                (n > 0.0).then(|| clamp_sum(n, s.matured_reward(), model.max()) / n)
             })
             .collect();
         let best = all_time.iter().flatten().copied().fold(f64::NEG_INFINITY, f64::max);
         for (s, m) in stats.iter().zip(&all_time) {
             if let Some(m) = m {
-                regret += s.pulls_total as f64 * (best - m);
+                regret += s.matured_pulls() as f64 * (best - m);
             }
         }
     }

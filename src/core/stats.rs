@@ -8,6 +8,8 @@
 
 use serde::{Deserialize, Serialize};
 
+use super::attribution::{Bucket, Pending, Window};
+
 /// Statistics of one arm.
 ///
 /// The `*_total` fields are the plain, undiscounted totals that the counters report; `pulls`,
@@ -29,6 +31,11 @@ pub struct ArmStats {
     pub reward_total: f64,
     /// Event time of the newest impression, for "last pull".
     pub last_pull_ms: Option<i64>,
+    /// Under an attribution window: impressions not yet matured, with the rewards attributed
+    /// to them (always empty without a window). `pulls_total` and `reward_total` count them;
+    /// the effective sums do not, until they mature.
+    #[serde(default, skip_serializing_if = "Pending::is_empty")]
+    pub pending: Pending,
 }
 
 /// Decay by a half-life in event time. `None` means no decay.
@@ -62,8 +69,45 @@ impl ArmStats {
     pub fn add_pulls(&mut self, count: u64, ts_ms: i64, half_life_ms: HalfLife) {
         let w = self.weight_for(ts_ms, half_life_ms);
         self.pulls += w * count as f64;
+        self.count_pulls(count, ts_ms);
+    }
+
+    /// Counts `count` impressions made at `ts_ms` in the totals and "last pull" only (the
+    /// effective sums take them when they mature).
+    pub fn count_pulls(&mut self, count: u64, ts_ms: i64) {
         self.pulls_total = self.pulls_total.saturating_add(count);
         self.last_pull_ms = Some(self.last_pull_ms.map_or(ts_ms, |t| t.max(ts_ms)));
+    }
+
+    /// Adds a matured bucket's sums to the effective ones, discounted from `at_ms` (the
+    /// bucket's start): an impression and the rewards attributed to it weigh alike, as one
+    /// observation made when the impression was.
+    pub fn absorb(&mut self, bucket: &Bucket, at_ms: i64, half_life_ms: HalfLife) {
+        let w = self.weight_for(at_ms, half_life_ms);
+        self.pulls += w * bucket.pulls as f64;
+        self.reward += w * bucket.reward;
+        self.reward_sq += w * bucket.reward_sq;
+    }
+
+    /// Moves every pending bucket below `below` into the effective sums, oldest first.
+    pub fn mature(&mut self, window: Window, below: i64, half_life_ms: HalfLife) {
+        let mut pending = std::mem::take(&mut self.pending);
+        pending.mature(below, |b| self.absorb(b, window.start_ms(b.index), half_life_ms));
+        self.pending = pending;
+    }
+
+    /// Pulls whose impressions have matured (all of them without a window).
+    pub fn matured_pulls(&self) -> u64 {
+        self.pulls_total.saturating_sub(self.pending.pulls())
+    }
+
+    /// Undiscounted reward attributed to matured pulls (all of it without a window).
+    pub fn matured_reward(&self) -> f64 {
+        if self.pending.is_empty() {
+            self.reward_total
+        } else {
+            self.reward_total - self.pending.reward()
+        }
     }
 
     /// Applies one reward of `value` (reward units) observed at `ts_ms`.

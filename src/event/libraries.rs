@@ -95,5 +95,7 @@ fn owned(raw: Raw<'_>) -> Raw<'static> {
         reward: raw.reward,
         propensity: raw.propensity,
         weights_version: raw.weights_version,
+        impression_id: own(raw.impression_id),
+        impression_ts_ms: raw.impression_ts_ms,
     }
 }

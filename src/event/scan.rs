@@ -32,7 +32,7 @@ pub(super) fn scan<'a>(bytes: &'a [u8], raw: &mut Raw<'a>) -> Option<()> {
 #[derive(Default)]
 pub(super) struct Spans {
     n: usize,
-    at: [(u8, usize, usize); 9],
+    at: [(u8, usize, usize); FIELDS],
     /// The kind, when the text named it.
     kind: Option<&'static str>,
 }
@@ -70,7 +70,7 @@ pub(super) fn scan_noting<'a>(bytes: &'a [u8], raw: &mut Raw<'a>, spans: &mut Sp
                 _ => {
                     let start = s.i;
                     s.value(field, raw)?;
-                    // `seen` allows each of the nine fields once, so there is room.
+                    // `seen` allows each field once, so there is room.
                     spans.at[spans.n] = (field as u8, start, s.i);
                     spans.n += 1;
                 }
@@ -100,20 +100,23 @@ pub(super) struct Shape {
     /// The texts between values, one after the other: text `k` (before value `k`; the last one
     /// follows the last value) ends at `ends[k]`.
     text: [u8; SHAPE_TEXT],
-    ends: [u16; 10],
-    fields: [u8; 9],
+    ends: [u16; FIELDS + 1],
+    fields: [u8; FIELDS],
     /// The kind, when the text names it.
     kind: Option<&'static str>,
     /// Values; `None` until a shape is learned.
     n: Option<u8>,
 }
 
+/// The event's own fields (their indices in `Raw`'s order, as [`Scanner::key`] gives them).
+const FIELDS: usize = 11;
+
 /// Bytes of text a shape holds; an event with more between its values is not learned.
 const SHAPE_TEXT: usize = 256;
 
 impl Default for Shape {
     fn default() -> Self {
-        Shape { text: [0; SHAPE_TEXT], ends: [0; 10], fields: [0; 9], kind: None, n: None }
+        Shape { text: [0; SHAPE_TEXT], ends: [0; FIELDS + 1], fields: [0; FIELDS], kind: None, n: None }
     }
 }
 
@@ -283,8 +286,9 @@ impl<'a> Scanner<'a> {
         }
     }
 
-    /// One value of `field`: a string (or null) for the four names, an integer for the time,
-    /// count and weights version, a decimal for reward and propensity.
+    /// One value of `field`: a string (or null) for the four names and the impression id, an
+    /// integer for the two times, count and weights version, a decimal for reward and
+    /// propensity.
     #[inline(always)]
     fn value(&mut self, field: u16, raw: &mut Raw<'a>) -> Option<()> {
         match field {
@@ -297,7 +301,9 @@ impl<'a> Scanner<'a> {
                     _ => raw.arm = v,
                 }
             }
+            9 => raw.impression_id = if self.null() { None } else { Some(Cow::Borrowed(self.plain_string()?)) },
             4 => raw.ts_ms = if self.null() { None } else { Some(self.integer()?) },
+            10 => raw.impression_ts_ms = if self.null() { None } else { Some(self.integer()?) },
             5 | 8 => {
                 let v = if self.null() {
                     None
@@ -371,6 +377,8 @@ impl<'a> Scanner<'a> {
             b'r' if self.literal(b"\"reward\"") => 6,
             b'p' if self.literal(b"\"propensity\"") => 7,
             b'w' if self.literal(b"\"weights_version\"") => 8,
+            b'i' if self.literal(b"\"impression_id\"") => 9,
+            b'i' if self.literal(b"\"impression_ts_ms\"") => 10,
             _ => return None,
         };
         Some(field)
@@ -550,6 +558,8 @@ mod tests {
             r#"{}"#,
             r#"{"event_id":"p","kind":"impression","experiment":"x","arm":"y","ts_ms":1,"propensity":0.3333}"#,
             r#"{"event_id":"r","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":1.0}"#,
+            r#"{"event_id":"r","kind":"reward","experiment":"x","arm":"y","ts_ms":9,"impression_id":"imp-1","impression_ts_ms":5}"#,
+            r#"{"event_id":"r","kind":"reward","experiment":"x","arm":"y","ts_ms":9,"impression_ts_ms":null,"impression_id":null}"#,
             r#"{"event_id":"r","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":-0.00000000000001}"#,
             r#"{"event_id":"r","kind":"reward","experiment":"x","arm":"y","ts_ms":1,"reward":123456789.012345}"#,
             "{\"event_id\":\"caf\u{e9}\",\"kind\":\"impression\",\"experiment\":\"x\",\"arm\":\"y\",\"ts_ms\":9223372036854775807}",

@@ -288,7 +288,7 @@ fn one_run(spec: &SimSpec, policy: &PolicySpec, cps: &[u64], seed: u64) -> Resul
         };
         exp.observe(arm, now, Observation::Impression { count: 1 }).map_err(|e| e.to_string())?;
         if reward > 0.0 {
-            exp.observe(arm, now, Observation::Reward { value: reward }).map_err(|e| e.to_string())?;
+            exp.observe(arm, now, Observation::reward(reward)).map_err(|e| e.to_string())?;
         }
         total += best - mean;
         if t + 1 == cps[next_cp] {

@@ -51,6 +51,7 @@ impl Checkpoint {
             let Some(part) = parts.get_mut(&p) else { continue };
             part.generation += 1;
             let duplicates = part.dedup.ids();
+            let impressions: Vec<(u64, i64)> = part.impressions.entries().collect();
             let counters = part.counters_for_snapshot();
             let snap = SnapshotOut {
                 format: snapshot::FORMAT,
@@ -64,6 +65,7 @@ impl Checkpoint {
                 version_floor: part.version_floor,
                 experiments: States(&part.experiments),
                 duplicates: &duplicates,
+                impressions: &impressions,
                 counters: &counters,
             };
             let bytes = match snap.encode() {

@@ -26,7 +26,9 @@ use super::snapshot::Counters;
 /// Kinds as counted (`kind` label); `unknown` for events not read far enough to know.
 pub const KINDS: [&str; 3] = ["impression", "reward", "unknown"];
 /// Outcomes as counted (`outcome` label).
-pub const OUTCOMES: [&str; 3] = ["applied", "duplicate", "rejected"];
+/// `late`: a reward taken after its impression's attribution window closed, counted and not
+/// applied to the estimates.
+pub const OUTCOMES: [&str; 4] = ["applied", "duplicate", "rejected", "late"];
 /// Number of (kind, outcome) cells.
 pub const CELLS: usize = KINDS.len() * OUTCOMES.len();
 
@@ -51,6 +53,7 @@ pub enum Outcome {
     Applied = 0,
     Duplicate = 1,
     Rejected = 2,
+    Late = 3,
 }
 
 /// Event counts by (kind, outcome): plain numbers, cheap to bump on the hot path.
@@ -71,10 +74,14 @@ impl Cells {
         (KINDS[i / OUTCOMES.len()], OUTCOMES[i % OUTCOMES.len()])
     }
 
-    /// Whether cell `i` can count anything: an event of unknown kind is never applied nor a
-    /// duplicate, so those two cells get no series.
+    /// Whether cell `i` can count anything: an event of unknown kind is only ever rejected,
+    /// and only a reward can be late, so the other cells get no series.
     pub fn counts_anything(i: usize) -> bool {
-        i / OUTCOMES.len() != Kind::Unknown as usize || i % OUTCOMES.len() == Outcome::Rejected as usize
+        let (kind, outcome) = (i / OUTCOMES.len(), i % OUTCOMES.len());
+        if kind == Kind::Unknown as usize {
+            return outcome == Outcome::Rejected as usize;
+        }
+        outcome != Outcome::Late as usize || kind == Kind::Reward as usize
     }
 
     /// As written in snapshots: `kind/outcome` → count, zero cells left out.
@@ -120,6 +127,8 @@ pub fn beyond(snapshot: &Counters, base: &Counters) -> Counters {
         dead_letters: diff(&snapshot.dead_letters, &base.dead_letters),
         split: diff(&snapshot.split, &base.split),
         unmatched_rewards: diff(&snapshot.unmatched_rewards, &base.unmatched_rewards),
+        late_rewards: diff(&snapshot.late_rewards, &base.late_rewards),
+        unattributed_rewards: diff(&snapshot.unattributed_rewards, &base.unattributed_rewards),
     }
 }
 
@@ -140,6 +149,8 @@ mod tests {
         assert_eq!(unknown, ["other/applied"]);
         assert!(!Cells::counts_anything(Cells::index(Kind::Unknown, Outcome::Applied)));
         assert!(Cells::counts_anything(Cells::index(Kind::Unknown, Outcome::Rejected)));
+        assert!(Cells::counts_anything(Cells::index(Kind::Reward, Outcome::Late)));
+        assert!(!Cells::counts_anything(Cells::index(Kind::Impression, Outcome::Late)));
     }
 
     #[test]

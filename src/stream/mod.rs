@@ -8,7 +8,6 @@
 
 pub mod checkpoint;
 pub mod counts;
-pub mod dedup;
 pub mod fence;
 pub mod fetch;
 pub mod offset;
@@ -16,6 +15,7 @@ pub mod partition;
 pub mod pipeline;
 pub mod producer;
 pub mod publisher;
+pub mod recent;
 pub mod restore;
 pub mod resume;
 pub mod settings;

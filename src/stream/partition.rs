@@ -11,12 +11,12 @@ use rdkafka::producer::BaseRecord;
 use rustc_hash::FxHashMap;
 
 use super::counts::{self, Cells, Outcome};
-use super::dedup::DedupWindow;
+use super::recent::{DedupWindow, ImpressionTimes};
 use super::producer::{send_with_retry, Sink};
 use super::resume::ResumeCheck;
 use super::settings::Settings;
 use super::snapshot::Counters;
-use crate::core::{Experiment, Observation, Refusal, State};
+use crate::core::{Credit, Experiment, Observation, Refusal, State};
 use crate::event::{self, Kind, Reason};
 use crate::telemetry::http::Served;
 use crate::telemetry::Metrics;
@@ -46,6 +46,8 @@ pub struct PartitionState {
     pub(super) next_offset: i64,
     pub(super) experiments: FxHashMap<String, Entry>,
     pub(super) dedup: DedupWindow,
+    /// Event times of recent impressions of experiments with an attribution window.
+    pub(super) impressions: ImpressionTimes,
     pub(super) tally: Tally,
     /// Generation of the last snapshot written (or loaded) of this partition.
     pub(super) generation: u64,
@@ -81,11 +83,12 @@ pub struct Tally {
 
 impl PartitionState {
     /// A partition with nothing read yet.
-    pub fn empty(duplicate_window: usize) -> PartitionState {
+    pub fn empty(duplicate_window: usize, remembered_impressions: usize) -> PartitionState {
         PartitionState {
             next_offset: 0,
             experiments: FxHashMap::default(),
             dedup: DedupWindow::new(duplicate_window),
+            impressions: ImpressionTimes::new(remembered_impressions),
             tally: Tally::default(),
             generation: 0,
             group_generation: -1,
@@ -192,6 +195,12 @@ impl Applier {
         for (exp, v) in &c.unmatched_rewards {
             m.unmatched_rewards.with_label_values(&[exp]).inc_by(*v);
         }
+        for (exp, v) in &c.late_rewards {
+            m.late_rewards.with_label_values(&[exp]).inc_by(*v);
+        }
+        for (exp, v) in &c.unattributed_rewards {
+            m.unattributed_rewards.with_label_values(&[exp]).inc_by(*v);
+        }
     }
 
     pub fn metrics(&self) -> &Metrics {
@@ -254,7 +263,7 @@ impl Applier {
 
     /// Decodes, checks and applies one event, or dead-letters it with its reason.
     pub fn apply(&mut self, holdings: &mut Holdings, part: &mut PartitionState, msg: &Msg<'_>, now_ms: i64) {
-        let PartitionState { experiments, dedup, tally, version_floor, .. } = part;
+        let PartitionState { experiments, dedup, impressions, tally, version_floor, .. } = part;
         let ev = match self.decoder.decode(msg.bytes, self.s.max_event_bytes, now_ms, self.s.max_skew_ms) {
             Ok(ev) => ev,
             Err(reason) => return self.reject(tally, msg, reason, counts::Kind::Unknown),
@@ -269,7 +278,7 @@ impl Applier {
             if holdings.owners.get(ev.experiment.as_ref()).is_some_and(|&owner| owner != msg.partition) {
                 self.note_split(tally, &ev.experiment);
             }
-            return self.observe(entry, dedup, tally, msg, &ev, kind, id_hash);
+            return self.observe(entry, Memory { dedup, impressions }, tally, msg, &ev, kind, id_hash);
         }
         // The experiment is not held on this partition. Only a valid impression creates it;
         // everything is checked on a new experiment of its own before it joins the state, so a
@@ -303,7 +312,11 @@ impl Applier {
         lifecycle.state_since_ms = lifecycle.state_since_ms.or(Some(now_ms));
         exp.start_in(lifecycle);
         match exp.apply(&ev.arm, ev.ts_ms, Observation::Impression { count: ev.count }) {
-            Ok(_) => {}
+            Ok(_) => {
+                if exp.spec().attribution.is_some() {
+                    remember(impressions, self.s.remembered_impressions, id_hash, ev.ts_ms);
+                }
+            }
             Err(Refusal::UndeclaredArm) => return self.reject(tally, msg, Reason::UnknownArm, kind),
             Err(_) => return self.reject(tally, msg, Reason::TooManyArms, kind),
         }
@@ -314,33 +327,69 @@ impl Applier {
         experiments.insert(ev.experiment.to_string(), entry);
         holdings.held += 1;
         self.note_owner(holdings, tally, msg.partition, &ev.experiment);
-        dedup.insert_new(id_hash);
+        dedup.insert_new(id_hash, ());
         self.count(tally, kind, Outcome::Applied);
     }
 
     /// Applies a decoded, new event to its experiment's entry.
     #[allow(clippy::too_many_arguments)]
-    fn observe(&mut self, entry: &mut Entry, dedup: &mut DedupWindow, tally: &mut Tally, msg: &Msg<'_>, ev: &event::Event<'_>, kind: counts::Kind, id_hash: u64) {
+    fn observe(&mut self, entry: &mut Entry, memory: Memory<'_>, tally: &mut Tally, msg: &Msg<'_>, ev: &event::Event<'_>, kind: counts::Kind, id_hash: u64) {
+        let windowed = entry.exp.spec().attribution.is_some();
         let obs = match ev.kind {
             Kind::Impression => Observation::Impression { count: ev.count },
-            Kind::Reward => Observation::Reward { value: ev.reward },
+            Kind::Reward => {
+                // The impression's time: as the reward says, else as remembered by its id.
+                let impression_ms = ev.impression_ts_ms.or_else(|| {
+                    let id = ev.impression_id.as_deref().filter(|_| windowed)?;
+                    memory.impressions.get(ImpressionTimes::hash(id))
+                });
+                Observation::Reward { value: ev.reward, impression_ms }
+            }
         };
-        match entry.exp.apply(&ev.arm, ev.ts_ms, obs) {
-            Ok(_) => {}
+        let credit = match entry.exp.apply(&ev.arm, ev.ts_ms, obs) {
+            Ok((_, credit)) => credit,
             Err(Refusal::RewardOutOfRange) => return self.reject(tally, msg, Reason::RewardOutOfRange, kind),
             Err(Refusal::TooManyArms) => return self.reject(tally, msg, Reason::TooManyArms, kind),
             Err(Refusal::UnknownArm) => return self.unmatched(tally, msg, &ev.experiment, true),
             Err(Refusal::UndeclaredArm) => return self.reject(tally, msg, Reason::UnknownArm, kind),
             Err(Refusal::Retired) => return self.reject(tally, msg, Reason::RetiredExperiment, kind),
+        };
+        match obs {
+            Observation::Impression { count } => {
+                entry.impressions_since = entry.impressions_since.saturating_add(count);
+                if windowed {
+                    remember(memory.impressions, self.s.remembered_impressions, id_hash, ev.ts_ms);
+                }
+            }
+            Observation::Reward { impression_ms: None, .. } if windowed => {
+                self.metrics().unattributed_rewards.with_label_values(&[&ev.experiment]).inc();
+                *tally.counters.unattributed_rewards.entry(ev.experiment.to_string()).or_default() += 1;
+            }
+            Observation::Reward { .. } => {}
         }
-        if let Observation::Impression { count } = obs {
-            entry.impressions_since = entry.impressions_since.saturating_add(count);
-        }
-        entry.changed = true;
         if entry.first_applied.is_none() {
             entry.first_applied = Some(Instant::now());
         }
-        dedup.insert_new(id_hash);
+        memory.dedup.insert_new(id_hash, ());
+        if credit == Credit::Late {
+            self.metrics().late_rewards.with_label_values(&[&ev.experiment]).inc();
+            *tally.counters.late_rewards.entry(ev.experiment.to_string()).or_default() += 1;
+            return self.count(tally, kind, Outcome::Late);
+        }
+        entry.changed = true;
         self.count(tally, kind, Outcome::Applied);
+    }
+}
+
+/// What a partition remembers of recent events, borrowed for one event.
+struct Memory<'a> {
+    dedup: &'a mut DedupWindow,
+    impressions: &'a mut ImpressionTimes,
+}
+
+/// Remembers an impression's event time by the hash of its id (off with a capacity of 0).
+fn remember(impressions: &mut ImpressionTimes, capacity: usize, id_hash: u64, ts_ms: i64) {
+    if capacity > 0 && !impressions.contains_hash(id_hash) {
+        impressions.insert_new(id_hash, ts_ms);
     }
 }

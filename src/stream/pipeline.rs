@@ -192,7 +192,7 @@ impl Pipeline {
                     part.complete_slot = slot;
                     part
                 }
-                Ok(None) => PartitionState::empty(self.applier.s.duplicate_window),
+                Ok(None) => PartitionState::empty(self.applier.s.duplicate_window, self.applier.s.remembered_impressions),
                 Err(e) => {
                     tracing::error!(partition = p, "cannot read the state topic: {e}; the partition is not taken");
                     continue;

@@ -16,15 +16,18 @@ use crate::core::report::{ArmReport, Report};
 use crate::core::{Allocation, Experiment, State};
 use crate::telemetry::http::Served;
 use crate::telemetry::table::{ArmRow, ExperimentRow};
-/// What the weights message carries of an arm's figures: the contract's five fields.
+/// What the weights message carries of an arm's figures: the contract's five fields, and the
+/// split of the pulls into matured and pending under an attribution window.
 pub struct ArmSummary<'a>(&'a ArmReport);
 
 impl Serialize for ArmSummary<'_> {
     fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
         use serde::ser::SerializeMap;
         let a = self.0;
-        let mut m = s.serialize_map(Some(5))?;
+        let mut m = s.serialize_map(Some(7))?;
         m.serialize_entry("pulls", &a.pulls)?;
+        m.serialize_entry("matured_pulls", &a.matured_pulls())?;
+        m.serialize_entry("pending_pulls", &a.pending_pulls)?;
         m.serialize_entry("reward", &a.reward)?;
         m.serialize_entry("mean", &a.mean)?;
         m.serialize_entry("ci_low", &a.ci_low)?;
@@ -129,6 +132,7 @@ impl Publisher {
                 if !(e.changed || heartbeat || e.redefined) {
                     continue;
                 }
+                e.exp.mature();
                 let weights = e.exp.weights(now, e.impressions_since.max(1));
                 let moved = e
                     .exp

@@ -12,7 +12,7 @@ use rdkafka::{Offset, TopicPartitionList};
 use rustc_hash::FxHashMap;
 
 use super::counts::Cells;
-use super::dedup::DedupWindow;
+use super::recent::{DedupWindow, ImpressionTimes};
 use super::partition::{Entry, PartitionState, Tally};
 use super::settings::Settings;
 use super::snapshot::{self, Pointer, Snapshot, Stored};
@@ -89,7 +89,8 @@ impl Restorer {
         PartitionState {
             next_offset: snap.next_offset,
             experiments,
-            dedup: DedupWindow::restore(self.s.duplicate_window, &snap.duplicates),
+            dedup: DedupWindow::restore(self.s.duplicate_window, snap.duplicates.iter().map(|&h| (h, ()))),
+            impressions: ImpressionTimes::restore(self.s.remembered_impressions, snap.impressions.iter().copied()),
             tally: Tally { counters: snap.counters, events },
             generation: snap.generation,
             group_generation: snap.group_generation,
@@ -261,6 +262,7 @@ mod tests {
             version_floor,
             experiments: BTreeMap::new(),
             duplicates: Vec::new(),
+            impressions: Vec::new(),
             counters: Counters::default(),
         }
     }

@@ -32,6 +32,13 @@ pub struct Counters {
     /// experiment → rewards refused for an arm with no impressions.
     #[serde(default)]
     pub unmatched_rewards: BTreeMap<String, u64>,
+    /// experiment → rewards that came after their impression's attribution window closed.
+    #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+    pub late_rewards: BTreeMap<String, u64>,
+    /// experiment → rewards of an experiment with an attribution window credited at their own
+    /// event time: they named no impression, or one no longer remembered.
+    #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+    pub unattributed_rewards: BTreeMap<String, u64>,
 }
 
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
@@ -62,6 +69,10 @@ pub struct Snapshot {
     pub experiments: BTreeMap<String, ExperimentState>,
     /// Duplicate window, oldest first (hashes of event ids).
     pub duplicates: Vec<u64>,
+    /// Event times of recent impressions of experiments with an attribution window, oldest
+    /// first: (hash of event id, event time ms).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub impressions: Vec<(u64, i64)>,
     pub counters: Counters,
 }
 
@@ -81,6 +92,8 @@ pub struct SnapshotOut<'a, E: Serialize> {
     pub version_floor: u64,
     pub experiments: E,
     pub duplicates: &'a [u64],
+    #[serde(skip_serializing_if = "<[_]>::is_empty")]
+    pub impressions: &'a [(u64, i64)],
     pub counters: &'a Counters,
 }
 
@@ -250,6 +263,7 @@ mod tests {
             version_floor: 0,
             experiments: BTreeMap::new(),
             duplicates: vec![1, 2, 3],
+            impressions: Vec::new(),
             counters: Counters { events: [("impression/applied".to_string(), 9u64)].into_iter().collect(), ..Counters::default() },
         };
         let out = SnapshotOut {
@@ -264,6 +278,7 @@ mod tests {
             version_floor: 0,
             experiments: BTreeMap::<String, ExperimentState>::new(),
             duplicates: &[1, 2, 3],
+            impressions: &[],
             counters: &snap.counters,
         };
         assert_eq!(Snapshot::decode(&out.encode().expect("encodes")), Ok(snap));
@@ -284,6 +299,7 @@ mod tests {
                 version_floor: 0,
                 experiments: BTreeMap::new(),
                 duplicates: Vec::new(),
+                impressions: Vec::new(),
                 counters: Counters::default(),
             }))
         };
@@ -311,6 +327,7 @@ mod tests {
             version_floor: 0,
             experiments: BTreeMap::new(),
             duplicates: (0..100).collect(),
+            impressions: Vec::new(),
             counters: Counters::default(),
         };
         let bytes = snap.encode().expect("encodes");

@@ -138,12 +138,15 @@ mod tests {
         m.dead_letters.with_label_values(&["malformed"]).inc();
         m.split.with_label_values(&["e"]).inc();
         m.unmatched_rewards.with_label_values(&["e"]).inc();
+        m.late_rewards.with_label_values(&["e"]).inc();
+        m.unattributed_rewards.with_label_values(&["e"]).inc();
         m.control_records.with_label_values(&["applied"]).inc();
         m.publish_latency.observe(0.1);
         m.consumer_lag.with_label_values(&["t", "0"]).set(1);
         m.snapshot_time.with_label_values(&["0"]).set(1.0);
         let figures = ArmReport {
             pulls: 1,
+            pending_pulls: 0,
             reward: 0.0,
             mean: 0.0,
             ci_low: 0.0,

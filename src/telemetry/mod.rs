@@ -18,6 +18,10 @@ pub struct Metrics {
     pub dead_letters: IntCounterVec,
     pub split: IntCounterVec,
     pub unmatched_rewards: IntCounterVec,
+    /// Rewards after their impression's attribution window: counted, not applied.
+    pub late_rewards: IntCounterVec,
+    /// Rewards of experiments with an attribution window credited at their own event time.
+    pub unattributed_rewards: IntCounterVec,
     /// Control records read by this instance since it started, by outcome.
     pub control_records: IntCounterVec,
     pub publish_latency: Histogram,
@@ -40,10 +44,21 @@ impl Metrics {
             }};
         }
         let m = Metrics {
-            events: reg!(IntCounterVec::new(Opts::new(names::EVENTS, "Events read, by kind and outcome (applied, duplicate, rejected)"), &["kind", "outcome"])?),
+            events: reg!(IntCounterVec::new(Opts::new(names::EVENTS, "Events read, by kind and outcome (applied, duplicate, rejected, late)"), &["kind", "outcome"])?),
             dead_letters: reg!(IntCounterVec::new(Opts::new(names::DEAD_LETTERS, "Events sent to the dead-letter topic, by reason"), &["reason"])?),
             split: reg!(IntCounterVec::new(Opts::new(names::EXPERIMENT_SPLIT, "Events of an experiment seen on more than one input partition"), exp)?),
             unmatched_rewards: reg!(IntCounterVec::new(Opts::new(names::UNMATCHED_REWARDS, "Rewards refused for an arm with no impressions (dead-lettered unknown-arm)"), exp)?),
+            late_rewards: reg!(IntCounterVec::new(
+                Opts::new(names::LATE_REWARDS, "Rewards that came after their impression's attribution window closed; counted, not applied"),
+                exp
+            )?),
+            unattributed_rewards: reg!(IntCounterVec::new(
+                Opts::new(
+                    names::UNATTRIBUTED_REWARDS,
+                    "Rewards of an experiment with an attribution window that named no impression the sidecar could find; credited at their own event time"
+                ),
+                exp
+            )?),
             control_records: reg!(IntCounterVec::new(
                 Opts::new(names::CONTROL_RECORDS, "Control records read since start, by outcome (applied, stale, invalid)"),
                 &["outcome"]
@@ -66,6 +81,8 @@ impl Metrics {
     pub fn remove_experiment(&self, experiment: &str) {
         let _ = self.split.remove_label_values(&[experiment]);
         let _ = self.unmatched_rewards.remove_label_values(&[experiment]);
+        let _ = self.late_rewards.remove_label_values(&[experiment]);
+        let _ = self.unattributed_rewards.remove_label_values(&[experiment]);
     }
 
     pub fn encode(&self) -> String {

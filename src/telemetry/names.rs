@@ -13,6 +13,8 @@ pub const SNAPSHOT_TIME: &str = "apportion_state_snapshot_timestamp_seconds";
 pub const BUILD_INFO: &str = "apportion_build_info";
 pub const READY: &str = "apportion_ready";
 pub const CONTROL_RECORDS: &str = "apportion_control_records_total";
+pub const LATE_REWARDS: &str = "apportion_late_rewards_total";
+pub const UNATTRIBUTED_REWARDS: &str = "apportion_unattributed_rewards_total";
 
 pub const ARM_PULLS: &str = "apportion_arm_pulls_total";
 pub const ARM_REWARD: &str = "apportion_arm_reward_total";
@@ -22,6 +24,7 @@ pub const ARM_WEIGHT: &str = "apportion_arm_weight_ratio";
 pub const ARM_UNDECIDED: &str = "apportion_arm_undecided";
 pub const ARM_LAST_PULL: &str = "apportion_arm_last_pull_timestamp_seconds";
 pub const ARM_EXCESS_REWARDS: &str = "apportion_arm_excess_rewards";
+pub const ARM_PENDING_PULLS: &str = "apportion_arm_pending_pulls";
 pub const EXPERIMENT_REGRET: &str = "apportion_experiment_regret_estimate";
 pub const EXPERIMENT_EXPLORATION: &str = "apportion_experiment_exploration_ratio";
 pub const WEIGHTS_VERSION: &str = "apportion_weights_version";
@@ -34,7 +37,7 @@ pub const EXPERIMENT_STATE_SINCE: &str = "apportion_experiment_state_since_times
 pub const HISTOGRAMS: [&str; 1] = [PUBLISH_LATENCY];
 
 /// Every family, instance-wide ones first.
-pub const ALL: [&str; 25] = [
+pub const ALL: [&str; 28] = [
     EVENTS,
     DEAD_LETTERS,
     EXPERIMENT_SPLIT,
@@ -45,6 +48,8 @@ pub const ALL: [&str; 25] = [
     BUILD_INFO,
     READY,
     CONTROL_RECORDS,
+    LATE_REWARDS,
+    UNATTRIBUTED_REWARDS,
     ARM_PULLS,
     ARM_REWARD,
     ARM_MEAN,
@@ -53,6 +58,7 @@ pub const ALL: [&str; 25] = [
     ARM_UNDECIDED,
     ARM_LAST_PULL,
     ARM_EXCESS_REWARDS,
+    ARM_PENDING_PULLS,
     EXPERIMENT_REGRET,
     EXPERIMENT_EXPLORATION,
     WEIGHTS_VERSION,

@@ -54,7 +54,7 @@ type ArmValue = fn(&ArmRow) -> Option<f64>;
 type ExperimentValue = fn(&ExperimentRow) -> Option<f64>;
 
 /// Per-arm families: name, type, help, value (None: no sample).
-const ARM_FAMILIES: [(&str, &str, &str, ArmValue); 8] = [
+const ARM_FAMILIES: [(&str, &str, &str, ArmValue); 9] = [
     (names::ARM_PULLS, "counter", "Impressions applied to the arm", |a| Some(a.figures.pulls as f64)),
     (names::ARM_REWARD, "counter", "Reward applied to the arm, in reward units", |a| Some(a.figures.reward)),
     (names::ARM_MEAN, "gauge", "Estimated mean reward of the arm", |a| Some(a.figures.mean)),
@@ -82,6 +82,12 @@ const ARM_FAMILIES: [(&str, &str, &str, ArmValue); 8] = [
         "gauge",
         "Rewards beyond one per impression under a 0/1 reward model, left out of the policy's success count",
         |a| Some(a.figures.excess_rewards),
+    ),
+    (
+        names::ARM_PENDING_PULLS,
+        "gauge",
+        "Impressions waiting for their attribution window to close; not yet in the mean, the interval or the policy's inputs",
+        |a| Some(a.figures.pending_pulls as f64),
     ),
 ];
 
@@ -273,8 +279,10 @@ struct ArmJson<'a>(&'a ArmRow);
 impl Serialize for ArmJson<'_> {
     fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
         let (a, f) = (self.0, &self.0.figures);
-        let mut m = s.serialize_map(Some(9))?;
+        let mut m = s.serialize_map(Some(11))?;
         m.serialize_entry("pulls", &f.pulls)?;
+        m.serialize_entry("matured_pulls", &f.matured_pulls())?;
+        m.serialize_entry("pending_pulls", &f.pending_pulls)?;
         m.serialize_entry("reward", &f.reward)?;
         m.serialize_entry("mean", &f.mean)?;
         m.serialize_entry("ci_low", &f.ci_low)?;
@@ -308,6 +316,7 @@ mod tests {
             name: name.into(),
             figures: ArmReport {
                 pulls,
+                pending_pulls: 0,
                 reward: 3.0,
                 mean: 0.25,
                 ci_low: 0.1,
