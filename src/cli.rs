@@ -121,6 +121,17 @@ pub struct SimulateArgs {
     /// Also draw mean regret against t to this SVG file (other extensions are refused).
     #[arg(long, value_name = "FILE.svg")]
     pub plot: Option<PathBuf>,
+    /// Rewards arrive this long after their impression: `exp:MEAN_SECONDS` (exponential) or
+    /// `fixed:SECONDS`. Shows what the delay costs in regret and in the estimates' bias.
+    #[arg(long, value_name = "DELAY")]
+    pub reward_delay: Option<sim::Delay>,
+    /// Impressions per second, which turns pulls into time for --reward-delay.
+    #[arg(long, value_name = "PER_SECOND", default_value_t = 100.0)]
+    pub rate: f64,
+    /// Attribute rewards to their impressions under a window of this many seconds, as the
+    /// sidecar does with `attribution_window_seconds`.
+    #[arg(long, value_name = "SECONDS")]
+    pub attribution_window: Option<f64>,
 }
 
 /// Runs the command line until done or until `signal` completes (the binary passes
@@ -328,6 +339,11 @@ fn simulate(args: SimulateArgs) -> ExitCode {
         batch: args.batch,
         seed: args.seed,
         threads: args.threads.unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get())),
+        timing: (args.reward_delay.is_some() || args.attribution_window.is_some()).then(|| sim::Timing {
+            delay: args.reward_delay.unwrap_or(sim::Delay::Fixed { seconds: 0.0 }),
+            rate_per_second: args.rate,
+            attribution_window_seconds: args.attribution_window,
+        }),
     };
     if let Err(e) = spec.validate().and_then(|()| args.plot.as_deref().map_or(Ok(()), sim::output::check_plot_path)) {
         eprintln!("apportion simulate: {e}");

@@ -35,6 +35,7 @@ fn spec(arms: &[f64], policies: &[&str], horizon: u64, runs: u32) -> SimSpec {
         batch: 1,
         seed: SEED,
         threads: 2,
+        timing: None,
     }
 }
 
@@ -297,6 +298,26 @@ fn simulate_json_has_exactly_the_keys_of_the_spec() {
 }
 
 #[test]
+fn simulate_json_with_a_reward_delay_adds_the_timing_and_the_estimates() {
+    let out = apportion(&[
+        "simulate", "--arms", "0.3,0.1", "--policies", "thompson", "--horizon", "2000", "--runs", "4", "--batch", "50",
+        "--reward-delay", "exp:2", "--rate", "50", "--attribution-window", "20", "--json",
+    ]);
+    assert!(out.status.success(), "simulate failed: {}", String::from_utf8_lossy(&out.stderr));
+    let doc: Value = serde_json::from_slice(&out.stdout).unwrap_or_else(|e| panic!("not JSON: {e}"));
+    assert_eq!(keys(&doc), set(&["arms", "horizon", "runs", "batch", "lai_robbins_constant", "timing", "results"]));
+    assert_eq!(doc["timing"]["delay"], serde_json::json!({"kind": "exponential", "mean_seconds": 2.0}));
+    assert_eq!(doc["timing"]["rate_per_second"], 50.0);
+    assert_eq!(doc["timing"]["attribution_window_seconds"], 20.0);
+    let r = &doc["results"][0];
+    assert_eq!(keys(r), set(&["policy", "checkpoints", "final_regret_mean", "final_regret_stderr", "estimates"]));
+    assert_eq!(keys(&r["estimates"]), set(&["mean_error", "mean_error_stderr", "pending_share", "late_share"]));
+    // 40 s of traffic under a 20 s window: between a half and 0.53 of the pulls still pending.
+    let pending = r["estimates"]["pending_share"].as_f64().unwrap_or(f64::NAN);
+    assert!((0.45..0.6).contains(&pending), "pending share {pending}");
+}
+
+#[test]
 fn simulate_plot_writes_an_svg() {
     let dir: PathBuf = std::env::temp_dir().join(format!("apportion-plot-{:016x}", rand::random::<u64>()));
     std::fs::create_dir_all(&dir).unwrap_or_else(|e| panic!("cannot create {}: {e}", dir.display()));
@@ -323,6 +344,10 @@ fn simulate_rejects_bad_input_with_status_two() {
         (&["simulate", "--arms", "0.5"][..], "--arms"),
         (&["simulate", "--arms", "0.05,0.04", "--policies", "nope"][..], "nope"),
         (&["simulate", "--arms", "0.05,1.5"][..], "1.5"),
+        (&["simulate", "--arms", "0.05,0.04", "--reward-delay", "gamma:3"][..], "--reward-delay"),
+        (&["simulate", "--arms", "0.05,0.04", "--reward-delay", "exp:-1"][..], "--reward-delay"),
+        (&["simulate", "--arms", "0.05,0.04", "--reward-delay", "exp:2", "--rate", "0"][..], "--rate"),
+        (&["simulate", "--arms", "0.05,0.04", "--attribution-window", "0"][..], "--attribution-window"),
     ] {
         let out = apportion(args);
         let stderr = String::from_utf8_lossy(&out.stderr);

@@ -8,16 +8,19 @@
 
 pub mod output;
 
+use std::cmp::Reverse;
+use std::collections::BinaryHeap;
+use std::str::FromStr;
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Mutex;
 
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
-use rand_distr::{Beta, Distribution};
+use rand_distr::{Beta, Distribution, Exp};
 use serde::Serialize;
 
 use crate::core::kl::bernoulli_kl;
-use crate::core::{Experiment, ExperimentSpec, Observation, PolicyName, PolicySpec, RewardModel};
+use crate::core::{Credit, Experiment, ExperimentSpec, Observation, PolicyName, PolicySpec, RewardModel, Window};
 
 /// Concentration κ of the Beta law that bounded arms draw rewards from:
 /// reward = max · X, X ~ Beta(κ·p, κ·(1 − p)), p = mean / max.
@@ -26,6 +29,52 @@ pub const BOUNDED_CONCENTRATION: f64 = 2.0;
 /// Log-spaced points per plotted curve; a curve through the checkpoints alone (one per power of
 /// ten) would be four or five straight segments.
 pub const CURVE_POINTS: usize = 100;
+
+/// How long a reward takes to arrive after its impression.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize)]
+#[serde(tag = "kind", rename_all = "kebab-case")]
+pub enum Delay {
+    /// Exponential with this mean: a constant hazard, as for conversions that come at a steady
+    /// rate after a view.
+    Exponential { mean_seconds: f64 },
+    /// Always this long.
+    Fixed { seconds: f64 },
+}
+
+impl Delay {
+    fn sample(self, rng: &mut StdRng) -> f64 {
+        match self {
+            Delay::Exponential { mean_seconds } => Exp::new(1.0 / mean_seconds).map_or(mean_seconds, |d| d.sample(rng)),
+            Delay::Fixed { seconds } => seconds,
+        }
+    }
+}
+
+impl FromStr for Delay {
+    type Err = String;
+
+    /// `exp:MEAN_SECONDS` or `fixed:SECONDS`.
+    fn from_str(s: &str) -> Result<Delay, String> {
+        let bad = || format!("--reward-delay {s:?}; give exp:MEAN_SECONDS (e.g. exp:30) or fixed:SECONDS (e.g. fixed:5)");
+        let (kind, v) = s.split_once(':').ok_or_else(bad)?;
+        let v: f64 = v.trim().parse().map_err(|_| bad())?;
+        match kind.trim() {
+            "exp" if v.is_finite() && v > 0.0 => Ok(Delay::Exponential { mean_seconds: v }),
+            "fixed" if v.is_finite() && v >= 0.0 => Ok(Delay::Fixed { seconds: v }),
+            _ => Err(bad()),
+        }
+    }
+}
+
+/// Time in a simulation with delayed rewards: pulls arrive at a steady rate, rewards after
+/// their delay, and the experiment may attribute them under a window.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize)]
+pub struct Timing {
+    pub delay: Delay,
+    /// Impressions per second: what turns pull counts into time.
+    pub rate_per_second: f64,
+    pub attribution_window_seconds: Option<f64>,
+}
 
 /// What to simulate.
 #[derive(Clone, Debug)]
@@ -40,6 +89,8 @@ pub struct SimSpec {
     pub seed: u64,
     /// Worker threads; results are the same for any count.
     pub threads: usize,
+    /// Rewards delayed in time; `None`: every reward comes with its impression.
+    pub timing: Option<Timing>,
 }
 
 impl SimSpec {
@@ -59,6 +110,16 @@ impl SimSpec {
         for (flag, v) in [("--horizon", self.horizon), ("--runs", self.runs as u64), ("--batch", self.batch)] {
             if v == 0 {
                 return Err(format!("{flag} is 0; it must be at least 1"));
+            }
+        }
+        if let Some(t) = &self.timing {
+            if !(t.rate_per_second.is_finite() && t.rate_per_second > 0.0) {
+                return Err(format!("--rate {}; it must be impressions per second > 0", t.rate_per_second));
+            }
+            if let Some(w) = t.attribution_window_seconds {
+                if !(w.is_finite() && w >= 0.001) {
+                    return Err(format!("--attribution-window {w}; it must be a number of seconds ≥ 0.001"));
+                }
             }
         }
         Ok(())
@@ -131,6 +192,22 @@ pub struct PolicyResult {
     /// Mean pulls of each arm at the horizon. Not part of the JSON shape.
     #[serde(skip)]
     pub mean_pulls: Vec<f64>,
+    /// With delayed rewards: what the delay did to the estimates at the horizon.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub estimates: Option<Estimates>,
+}
+
+/// The estimates at the horizon of a simulation with delayed rewards, over the runs.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Estimates {
+    /// Per arm: mean over runs of (reported mean − true mean), over the runs in which the arm
+    /// had matured pulls; negative when pending rewards pull the estimate down.
+    pub mean_error: Vec<f64>,
+    pub mean_error_stderr: Vec<f64>,
+    /// Share of the pulls still waiting to mature at the horizon (0 without a window).
+    pub pending_share: f64,
+    /// Share of the rewards delivered by the horizon that came after their window closed.
+    pub late_share: f64,
 }
 
 #[derive(Clone, Debug, PartialEq, Serialize)]
@@ -140,6 +217,8 @@ pub struct SimReport {
     pub runs: u32,
     pub batch: u64,
     pub lai_robbins_constant: f64,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub timing: Option<Timing>,
     pub results: Vec<PolicyResult>,
 }
 
@@ -148,6 +227,12 @@ struct RunOutcome {
     regret: Vec<f64>,
     estimate: f64,
     pulls: Vec<u64>,
+    /// Per arm: reported mean − true mean at the horizon, for arms with matured pulls.
+    mean_error: Vec<Option<f64>>,
+    pending: u64,
+    /// Rewards delivered by the horizon, and how many of them were late.
+    delivered: u64,
+    late: u64,
 }
 
 /// Runs the simulation; `progress` is called with the number of finished runs.
@@ -173,7 +258,7 @@ pub fn simulate(spec: &SimSpec, progress: &(dyn Fn(u64) + Sync)) -> Result<SimRe
                     break;
                 }
                 let (p, r) = (job / runs, job % runs);
-                match one_run(spec, &spec.policies[p], &points, run_seed(spec.seed, r as u64)) {
+                match one_run(spec, &spec.policies[p], &points, run_seed(spec.seed, r as u64), &mut |_, _, _| {}) {
                     Ok(out) => {
                         if let Ok(mut slots) = slots.lock() {
                             slots[job] = Some(out);
@@ -217,6 +302,7 @@ pub fn simulate(spec: &SimSpec, progress: &(dyn Fn(u64) + Sync)) -> Result<SimRe
             final_regret_stderr: last.regret_stderr,
             final_estimate_mean: mean_stderr(outs.iter().map(|o| o.estimate)).0,
             mean_pulls,
+            estimates: spec.timing.map(|_| estimates(spec.arms.len(), &outs)),
         });
     }
     Ok(SimReport {
@@ -225,8 +311,37 @@ pub fn simulate(spec: &SimSpec, progress: &(dyn Fn(u64) + Sync)) -> Result<SimRe
         runs: spec.runs,
         batch: spec.batch,
         lai_robbins_constant: spec.lai_robbins_constant(),
+        timing: spec.timing,
         results,
     })
+}
+
+fn estimates(arms: usize, outs: &[&RunOutcome]) -> Estimates {
+    let (mean_error, mean_error_stderr) = (0..arms)
+        .map(|j| {
+            let errors: Vec<f64> = outs.iter().filter_map(|o| o.mean_error[j]).collect();
+            mean_stderr(errors.iter().copied())
+        })
+        .unzip();
+    let pulls: u64 = outs.iter().map(|o| o.pulls.iter().sum::<u64>()).sum();
+    let pending: u64 = outs.iter().map(|o| o.pending).sum();
+    let delivered: u64 = outs.iter().map(|o| o.delivered).sum();
+    let late: u64 = outs.iter().map(|o| o.late).sum();
+    Estimates {
+        mean_error,
+        mean_error_stderr,
+        pending_share: pending as f64 / pulls.max(1) as f64,
+        late_share: late as f64 / delivered.max(1) as f64,
+    }
+}
+
+/// Simulates run `run` of `policy` alone (the same run `simulate` makes), calling `watch`
+/// with the pull count, the event time (ms) and the experiment, its pending impressions
+/// matured, at each of `points` (pull counts, ascending): for studies of the estimates along
+/// the way.
+pub fn watch_run(spec: &SimSpec, policy: &PolicySpec, run: u64, points: &[u64], watch: &mut dyn FnMut(u64, i64, &Experiment)) -> Result<(), String> {
+    spec.validate()?;
+    one_run(spec, policy, points, run_seed(spec.seed, run), watch).map(|_| ())
 }
 
 /// Seed of run `r`: SplitMix64 of the base seed and the run number.
@@ -250,9 +365,14 @@ fn mean_stderr(values: impl Iterator<Item = f64> + Clone) -> (f64, f64) {
     (mean, (var / n).sqrt())
 }
 
-fn one_run(spec: &SimSpec, policy: &PolicySpec, cps: &[u64], seed: u64) -> Result<RunOutcome, String> {
+fn one_run(spec: &SimSpec, policy: &PolicySpec, cps: &[u64], seed: u64, watch: &mut dyn FnMut(u64, i64, &Experiment)) -> Result<RunOutcome, String> {
     let names: Vec<String> = (1..=spec.arms.len()).map(|j| format!("arm-{j}")).collect();
-    let mut exp = Experiment::new(ExperimentSpec::new(policy.clone(), spec.reward), &names)?;
+    let mut exp_spec = ExperimentSpec::new(policy.clone(), spec.reward);
+    exp_spec.attribution = spec
+        .timing
+        .and_then(|t| t.attribution_window_seconds)
+        .map(|w| Window { ms: (w * 1000.0).round() as i64 });
+    let mut exp = Experiment::new(exp_spec, &names)?;
     let mut rng = StdRng::seed_from_u64(seed);
     let best = spec.best();
     let max = spec.reward.max();
@@ -268,8 +388,28 @@ fn one_run(spec: &SimSpec, policy: &PolicySpec, cps: &[u64], seed: u64) -> Resul
     let mut total = 0.0;
     let mut next_cp = 0;
     let mut weights: Vec<f64> = Vec::new();
+    // Rewards on their way: (arrival ms, order sent, arm, impression ms, value bits).
+    let mut on_the_way: BinaryHeap<Reverse<(i64, u64, usize, i64, u64)>> = BinaryHeap::new();
+    let (mut delivered, mut late) = (0u64, 0u64);
+    let time_of = |t: u64| -> i64 {
+        match spec.timing {
+            Some(timing) => (t as f64 * 1000.0 / timing.rate_per_second).floor() as i64,
+            None => t as i64,
+        }
+    };
     for t in 0..spec.horizon {
-        let now = t as i64;
+        let now = time_of(t);
+        while let Some(&Reverse((at, _, arm, impression_ms, bits))) = on_the_way.peek() {
+            if at > now {
+                break;
+            }
+            on_the_way.pop();
+            let obs = Observation::Reward { value: f64::from_bits(bits), impression_ms: Some(impression_ms) };
+            delivered += 1;
+            if exp.observe(arm, at, obs).map_err(|e| e.to_string())? == Credit::Late {
+                late += 1;
+            }
+        }
         let arm = if spec.batch == 1 {
             exp.choose(now, &mut rng)
         } else {
@@ -288,20 +428,42 @@ fn one_run(spec: &SimSpec, policy: &PolicySpec, cps: &[u64], seed: u64) -> Resul
         };
         exp.observe(arm, now, Observation::Impression { count: 1 }).map_err(|e| e.to_string())?;
         if reward > 0.0 {
-            exp.observe(arm, now, Observation::reward(reward)).map_err(|e| e.to_string())?;
+            match spec.timing {
+                None => {
+                    exp.observe(arm, now, Observation::reward(reward)).map_err(|e| e.to_string())?;
+                }
+                Some(timing) => {
+                    let at = now.saturating_add((timing.delay.sample(&mut rng) * 1000.0).round() as i64);
+                    on_the_way.push(Reverse((at, t, arm, now, reward.to_bits())));
+                }
+            }
         }
         total += best - mean;
         if t + 1 == cps[next_cp] {
             regret.push(total);
+            exp.mature();
+            watch(t + 1, now, &exp);
             next_cp = (next_cp + 1).min(cps.len() - 1);
         }
     }
-    let now = spec.horizon as i64;
+    let now = match spec.timing {
+        Some(_) => time_of(spec.horizon - 1),
+        None => spec.horizon as i64,
+    };
+    exp.mature();
+    let report = exp.report(now);
     Ok(RunOutcome {
         regret,
-        estimate: exp.report(now).regret_estimate,
+        estimate: report.regret_estimate,
         pulls: exp.arm_stats().iter().map(|s| s.pulls_total).collect(),
+        mean_error: report
+            .arms
+            .iter()
+            .zip(&spec.arms)
+            .map(|(a, m)| (a.matured_pulls() > 0).then(|| a.mean - m))
+            .collect(),
+        pending: report.arms.iter().map(|a| a.pending_pulls).sum(),
+        delivered,
+        late,
     })
 }
-
-

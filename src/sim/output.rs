@@ -43,7 +43,44 @@ pub fn table(report: &SimReport) -> String {
         s.push('\n');
     }
     s.push_str("\nregret: mean pseudo-regret Σ(μ* − μ of the pulled arm) over the runs, ± standard error\n");
+    if let Some(t) = &report.timing {
+        timing(&mut s, report, t);
+    }
     s
+}
+
+/// What the delay did to the estimates: the mean error of each arm's reported mean at the
+/// horizon, the pulls still pending and the rewards that came too late.
+fn timing(s: &mut String, report: &SimReport, t: &super::Timing) {
+    let delay = match t.delay {
+        super::Delay::Exponential { mean_seconds } => format!("exponential, mean {mean_seconds} s"),
+        super::Delay::Fixed { seconds } => format!("fixed {seconds} s"),
+    };
+    let window = t.attribution_window_seconds.map_or("none (pulls count at once)".to_string(), |w| format!("{w} s"));
+    let _ = writeln!(
+        s,
+        "\nreward delay {delay} · {} impressions/s (horizon {:.0} s) · attribution window {window}",
+        t.rate_per_second,
+        report.horizon as f64 / t.rate_per_second
+    );
+    let width = report.results.iter().map(|r| r.policy.len()).max().unwrap_or(6).max(6);
+    let _ = write!(s, "{:<width$}", "policy");
+    for j in 1..=report.arms.len() {
+        let _ = write!(s, "  {:>20}", format!("error arm-{j}"));
+    }
+    let _ = writeln!(s, "  {:>8}  {:>8}", "pending", "late");
+    for r in &report.results {
+        let Some(e) = &r.estimates else { continue };
+        let _ = write!(s, "{:<width$}", r.policy);
+        for (m, se) in e.mean_error.iter().zip(&e.mean_error_stderr) {
+            let _ = write!(s, "  {:>20}", format!("{m:+.5} ± {se:.5}"));
+        }
+        let _ = writeln!(s, "  {:>7.2}%  {:>7.2}%", 100.0 * e.pending_share, 100.0 * e.late_share);
+    }
+    s.push_str(
+        "error: reported mean − true mean at the horizon, over the runs, ± standard error (negative: pulled down by rewards not yet come)\n\
+         pending: pulls waiting for their window to close · late: rewards after their window, not applied\n",
+    );
 }
 
 /// Refuses a plot file that would not be SVG, before anything is simulated.
