@@ -234,18 +234,20 @@ fn unit(experiment: &str) -> &'static str {
     WORLD.iter().find(|t| t.experiment == experiment).map_or("reward units", |t| t.unit)
 }
 
-/// The live table: experiment, arm, pulls, mean and interval, weight, regret estimate.
+/// The live table: experiment, arm, pulls (and those pending), mean and interval, weight,
+/// regret estimate.
 fn render(served: &Served, elapsed: Duration, produced: u64) -> String {
     let mut s = format!("Simmer · {:>4}s · {produced} events produced\n\n", elapsed.as_secs());
-    s += &format!("{:<14} {:<15} {:>8} {:>26} {:>8}\n", "experiment", "arm", "pulls", "mean [95% interval]", "weight");
+    s += &format!("{:<14} {:<15} {:>8} {:>8} {:>26} {:>8}\n", "experiment", "arm", "pulls", "pending", "mean [95% interval]", "weight");
     for (id, e) in rows(served) {
         for (i, a) in e.arms.iter().enumerate() {
             let lead = if e.leader == Some(i) { "*" } else { " " };
             s += &format!(
-                "{:<14} {lead}{:<14} {:>8} {:>26} {:>8}\n",
+                "{:<14} {lead}{:<14} {:>8} {:>8} {:>26} {:>8}\n",
                 if i == 0 { id.as_str() } else { "" },
                 a.name,
                 a.figures.pulls,
+                a.figures.pending_pulls,
                 format!("{:.4} [{:.4}, {:.4}]", a.figures.mean, a.figures.ci_low, a.figures.ci_high),
                 a.weight.map_or("-".into(), |w| format!("{:.3}", w)),
             );
@@ -256,7 +258,7 @@ fn render(served: &Served, elapsed: Duration, produced: u64) -> String {
             "", e.policy, e.version, e.regret_estimate
         );
     }
-    s += "* leader (highest estimated mean)\n";
+    s += "* leader (highest estimated mean) · pending: impressions younger than the attribution window, not yet in the mean\n";
     s
 }
 
@@ -285,8 +287,13 @@ fn summary(served: &Served) -> String {
         );
         for (arm, truth) in t.arms {
             let a = e.arms.iter().find(|a| a.name == *arm);
+            let estimate = a.map_or("no pulls".into(), |a| {
+                let f = &a.figures;
+                let verdict = if f.ci_low <= *truth && *truth <= f.ci_high { "covers" } else { "misses" };
+                format!("estimate {:.4} [{:.4}, {:.4}] {verdict}", f.mean, f.ci_low, f.ci_high)
+            });
             s += &format!(
-                "    {:<14} true mean {:>7} {}/impression · {:>5.1}% of traffic · weight {}\n",
+                "    {:<14} true mean {:>7} {}/impression · {estimate} · {:>5.1}% of traffic · weight {}\n",
                 arm,
                 truth,
                 t.unit,

@@ -1,6 +1,8 @@
 //! The demo's traffic: a stand-in for the services beside the sidecar. It reads the latest
 //! weights back from the weights topic, picks arms by sampling them, writes impressions, and
 //! writes rewards one to four seconds later, so the loop closes through Kafka as in production.
+//! Each reward names its impression by id, and every other one by time too, so that both ways
+//! of attributing a reward are exercised.
 //! A small share of events is sent twice or malformed, to show duplicates and dead letters.
 
 use std::cmp::Reverse;
@@ -116,10 +118,11 @@ impl Traffic {
                 };
                 if reward > 0.0 {
                     let delay = Duration::from_millis(rng.gen_range(1000..4000));
+                    let by_time = if seq % 2 == 0 { format!(r#","impression_ts_ms":{now}"#) } else { String::new() };
                     pending.push(Reverse(Pending {
                         due: Instant::now() + delay,
                         payload: format!(
-                            r#"{{"event_id":"rew-{seq}","kind":"reward","experiment":"{}","arm":"{arm}","ts_ms":{},"reward":{reward}}}"#,
+                            r#"{{"event_id":"rew-{seq}","kind":"reward","experiment":"{}","arm":"{arm}","ts_ms":{},"reward":{reward},"impression_id":"imp-{seq}"{by_time}}}"#,
                             truth.experiment,
                             now + delay.as_millis() as i64
                         ),

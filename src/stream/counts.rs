@@ -14,7 +14,11 @@
 //!   snapshot holds beyond what this process already counted of that partition when it last let
 //!   it go (nothing, for a partition it never held).
 //!
-//! So after a hand-over between live instances neither instance's counters move; after a crash
+//! Per-experiment series (`apportion_unmatched_rewards_total`, `apportion_late_rewards_total`,
+//! …) are different: they live only where their experiment is held, and go when it goes, so
+//! a new owner takes them over at the snapshot's values whatever wrote it.
+//!
+//! So after a hand-over between live instances neither instance's event counters move; after a crash
 //! or a shutdown the next owner carries the partition's counts on. What this gives up: a member
 //! that handed a partition over and later dies takes its share of that partition's earlier
 //! counts with its series, so the sum over instances can fall short (never over) until then.
@@ -112,7 +116,9 @@ impl Cells {
 }
 
 /// What `snapshot` holds beyond `base`, key by key (never below zero): the part of a
-/// partition's restored counts that this process's counters do not yet hold.
+/// partition's restored instance-wide counts (events, dead letters) that this process's
+/// counters do not yet hold. Per-experiment counts follow their experiment instead
+/// (`Applier::carry_experiment_counts`).
 pub fn beyond(snapshot: &Counters, base: &Counters) -> Counters {
     fn diff(a: &BTreeMap<String, u64>, b: &BTreeMap<String, u64>) -> BTreeMap<String, u64> {
         a.iter()
@@ -122,14 +128,7 @@ pub fn beyond(snapshot: &Counters, base: &Counters) -> Counters {
             })
             .collect()
     }
-    Counters {
-        events: diff(&snapshot.events, &base.events),
-        dead_letters: diff(&snapshot.dead_letters, &base.dead_letters),
-        split: diff(&snapshot.split, &base.split),
-        unmatched_rewards: diff(&snapshot.unmatched_rewards, &base.unmatched_rewards),
-        late_rewards: diff(&snapshot.late_rewards, &base.late_rewards),
-        unattributed_rewards: diff(&snapshot.unattributed_rewards, &base.unattributed_rewards),
-    }
+    Counters { events: diff(&snapshot.events, &base.events), dead_letters: diff(&snapshot.dead_letters, &base.dead_letters), ..Counters::default() }
 }
 
 #[cfg(test)]

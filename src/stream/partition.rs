@@ -179,7 +179,8 @@ impl Applier {
         }
     }
 
-    /// Adds counts restored from a snapshot to this process's counters.
+    /// Adds the instance-wide counts restored from a snapshot (events, dead letters) to this
+    /// process's counters; what to add is decided in `counts.rs`.
     pub fn count_restored(&self, c: &Counters) {
         let cells = Cells::from_map(&c.events, |_| {});
         for (handle, &n) in self.events.iter().zip(cells.0.iter()) {
@@ -189,17 +190,23 @@ impl Applier {
         for (reason, v) in &c.dead_letters {
             m.dead_letters.with_label_values(&[reason]).inc_by(*v);
         }
-        for (exp, v) in &c.split {
-            m.split.with_label_values(&[exp]).inc_by(*v);
-        }
-        for (exp, v) in &c.unmatched_rewards {
-            m.unmatched_rewards.with_label_values(&[exp]).inc_by(*v);
-        }
-        for (exp, v) in &c.late_rewards {
-            m.late_rewards.with_label_values(&[exp]).inc_by(*v);
-        }
-        for (exp, v) in &c.unattributed_rewards {
-            m.unattributed_rewards.with_label_values(&[exp]).inc_by(*v);
+    }
+
+    /// Gives this process the per-experiment series of a partition it takes over, at their
+    /// values in the snapshot: those series live with the experiment's owner alone (the
+    /// previous owner removed them as it let the partition go, or died with them), so they
+    /// are carried over in full, whoever wrote the snapshot.
+    pub fn carry_experiment_counts(&self, c: &Counters) {
+        let m = self.metrics();
+        for (family, counts) in [
+            (&m.split, &c.split),
+            (&m.unmatched_rewards, &c.unmatched_rewards),
+            (&m.late_rewards, &c.late_rewards),
+            (&m.unattributed_rewards, &c.unattributed_rewards),
+        ] {
+            for (exp, v) in counts {
+                family.with_label_values(&[exp]).inc_by(*v);
+            }
         }
     }
 

@@ -188,6 +188,7 @@ impl Pipeline {
                     if !snap.handed_over {
                         self.applier.count_restored(&counts::beyond(&snap.counters, &base));
                     }
+                    self.applier.carry_experiment_counts(&snap.counters);
                     let mut part = self.restorer.partition(p, snap);
                     part.complete_slot = slot;
                     part
