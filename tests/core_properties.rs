@@ -5,7 +5,8 @@
 use std::collections::BTreeMap;
 
 use apportion::core::policy::{ArmInput, IndexRule, KlUcb, Ucb1};
-use apportion::core::{Experiment, ExperimentSpec, Bounds, Observation, PolicyName, PolicySpec, RewardModel};
+use apportion::core::attribution::MAX_BUCKETS;
+use apportion::core::{Bounds, Credit, Experiment, ExperimentSpec, Observation, PolicyName, PolicySpec, RewardModel, Window};
 use proptest::prelude::*;
 use rand::rngs::StdRng;
 use rand::SeedableRng;
@@ -463,6 +464,61 @@ proptest! {
         // Weights are deterministic too: randomness belongs to `choose` only.
         let (wa, wb) = (a.weights(100_000, 100), b.weights(100_000, 100));
         prop_assert_eq!(wa.iter().map(|w| w.to_bits()).collect::<Vec<_>>(), wb.iter().map(|w| w.to_bits()).collect::<Vec<_>>());
+    }
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 256, ..ProptestConfig::default() })]
+
+    /// Under an attribution window, whatever the order and spacing of events: no arm holds more
+    /// than `MAX_BUCKETS` buckets, every pull is matured or pending, a reward is late exactly
+    /// when it came more than W after its impression, and a matured estimate never counts a
+    /// reward twice (the matured reward is the applied reward minus the pending one).
+    #[test]
+    fn attribution_keeps_its_bound_and_loses_or_doubles_nothing(
+        window_ms in 1i64..100_000,
+        steps in prop::collection::vec((0usize..3, 0i64..3_000, -5_000i64..5_000, prop::option::of(-150_000i64..10_000), any::<bool>()), 1..300),
+        half_life in prop::option::of(1.0f64..50_000.0),
+    ) {
+        let mut spec = ExperimentSpec::new(PolicySpec::new(PolicyName::Thompson), RewardModel::Bounded { max: 1.0 });
+        spec.attribution = Some(Window { ms: window_ms });
+        spec.half_life_ms = half_life;
+        let mut e = Experiment::new(spec, &names(3)).map_err(TestCaseError::fail)?;
+        let (mut pulls, mut applied) = ([0u64; 3], [0.0f64; 3]);
+        let mut now = 0i64;
+        for (arm, advance, jitter, offset, is_impression) in steps {
+            // Event times move forward with jitter, as several producers write them.
+            now += advance;
+            let ts = now + jitter;
+            let credit = if is_impression || pulls[arm] == 0 {
+                pulls[arm] += 1;
+                e.observe(arm, ts, Observation::Impression { count: 1 })
+            } else {
+                let impression_ms = offset.map(|o| ts + o);
+                let c = e.observe(arm, ts, Observation::Reward { value: 0.5, impression_ms });
+                let expected_late = impression_ms.is_some_and(|i| ts - i.min(ts) > window_ms);
+                prop_assert_eq!(c == Ok(Credit::Late), expected_late);
+                if !expected_late {
+                    applied[arm] += 0.5;
+                }
+                c
+            };
+            prop_assert!(credit.is_ok(), "{:?}", credit);
+            for (j, s) in e.arm_stats().iter().enumerate() {
+                prop_assert!(s.pending.len() <= MAX_BUCKETS, "arm {} holds {} buckets", j, s.pending.len());
+                prop_assert_eq!(s.pulls_total, pulls[j]);
+                prop_assert_eq!(s.matured_pulls() + s.pending.pulls(), pulls[j]);
+                prop_assert!((s.reward_total - applied[j]).abs() < 1e-9);
+            }
+        }
+        e.mature();
+        for s in e.arm_stats() {
+            prop_assert!(s.matured_reward() <= s.reward_total + 1e-9 && s.matured_reward() >= -1e-9);
+            if half_life.is_none() {
+                prop_assert_eq!(s.pulls, s.matured_pulls() as f64);
+                prop_assert!((s.reward - s.matured_reward()).abs() < 1e-9);
+            }
+        }
     }
 }
 

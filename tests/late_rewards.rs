@@ -29,12 +29,20 @@ struct Want {
     credited: Vec<i64>,
 }
 
+/// The messages to send (key, value), what they must leave per (experiment, arm), and each
+/// experiment's newest event time.
+type Workload = (Vec<(String, Vec<u8>)>, BTreeMap<(String, String), Want>, BTreeMap<String, i64>);
+
+/// An arm's figures as `/experiments` shows them: (pulls, reward, matured pulls, pending
+/// pulls, mean).
+type Figures = (u64, f64, u64, u64, f64);
+
 /// A seeded stream over `experiments` experiments of three arms. Each impression converts with
 /// probability 0.3 after a delay uniform in [0, 8 s), so that about 3/8 of the rewards come
 /// after the 5 s window. A reward names its impression by id (a third), by time (a third), by
 /// both (a fourth), or not at all (the rest); 2 % of events are sent twice. Events are sent in
 /// event-time order, as services write them.
-fn workload(impressions: usize, experiments: usize, seed: u64) -> (Vec<(String, Vec<u8>)>, BTreeMap<(String, String), Want>, BTreeMap<String, i64>) {
+fn workload(impressions: usize, experiments: usize, seed: u64) -> Workload {
     let mut rng = StdRng::seed_from_u64(seed);
     let t0 = apportion::clock::now_ms() - 300_000;
     let mut events: Vec<(i64, String, String)> = Vec::new();
@@ -91,9 +99,8 @@ fn workload(impressions: usize, experiments: usize, seed: u64) -> (Vec<(String, 
     (out, want, clocks)
 }
 
-/// Per (experiment, arm) from both instances' `/experiments`: (pulls, reward, matured pulls,
-/// pending pulls, mean).
-fn figures(bodies: &[String]) -> BTreeMap<(String, String), (u64, f64, u64, u64, f64)> {
+/// Per (experiment, arm), from both instances' `/experiments`.
+fn figures(bodies: &[String]) -> BTreeMap<(String, String), Figures> {
     let mut out = BTreeMap::new();
     for body in bodies {
         let v: serde_json::Value = serde_json::from_str(body).unwrap_or_default();

@@ -365,7 +365,7 @@ impl Experiment {
     /// impression's time when the event names it, clamped to the reward's own time; else the
     /// reward's own time), and a reward more than W after its impression is late: counted by
     /// the caller, not applied. Each call first matures the arm's buckets to the clock, so
-    /// an arm holds at most `attribution::BUCKETS + 2` of them.
+    /// an arm holds at most `attribution::MAX_BUCKETS` of them.
     pub fn observe(&mut self, arm: usize, ts_ms: i64, obs: Observation) -> Result<Credit, Refusal> {
         let half_life = self.spec.half_life_ms;
         if let Observation::Reward { value, .. } = obs {

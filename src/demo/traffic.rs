@@ -118,7 +118,7 @@ impl Traffic {
                 };
                 if reward > 0.0 {
                     let delay = Duration::from_millis(rng.gen_range(1000..4000));
-                    let by_time = if seq % 2 == 0 { format!(r#","impression_ts_ms":{now}"#) } else { String::new() };
+                    let by_time = if seq.is_multiple_of(2) { format!(r#","impression_ts_ms":{now}"#) } else { String::new() };
                     pending.push(Reverse(Pending {
                         due: Instant::now() + delay,
                         payload: format!(

@@ -365,6 +365,10 @@ fn mean_stderr(values: impl Iterator<Item = f64> + Clone) -> (f64, f64) {
     (mean, (var / n).sqrt())
 }
 
+/// A reward on its way: (arrival ms, the pull that earned it, arm, impression ms, value bits),
+/// ordered by arrival, then by pull.
+type OnTheWay = (i64, u64, usize, i64, u64);
+
 fn one_run(spec: &SimSpec, policy: &PolicySpec, cps: &[u64], seed: u64, watch: &mut dyn FnMut(u64, i64, &Experiment)) -> Result<RunOutcome, String> {
     let names: Vec<String> = (1..=spec.arms.len()).map(|j| format!("arm-{j}")).collect();
     let mut exp_spec = ExperimentSpec::new(policy.clone(), spec.reward);
@@ -388,8 +392,7 @@ fn one_run(spec: &SimSpec, policy: &PolicySpec, cps: &[u64], seed: u64, watch: &
     let mut total = 0.0;
     let mut next_cp = 0;
     let mut weights: Vec<f64> = Vec::new();
-    // Rewards on their way: (arrival ms, order sent, arm, impression ms, value bits).
-    let mut on_the_way: BinaryHeap<Reverse<(i64, u64, usize, i64, u64)>> = BinaryHeap::new();
+    let mut on_the_way: BinaryHeap<Reverse<OnTheWay>> = BinaryHeap::new();
     let (mut delivered, mut late) = (0u64, 0u64);
     let time_of = |t: u64| -> i64 {
         match spec.timing {

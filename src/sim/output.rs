@@ -200,6 +200,7 @@ mod tests {
             batch: 1,
             seed: 3,
             threads: 1,
+            timing: None,
         };
         simulate(&spec, &|_| {}).unwrap()
     }
