@@ -48,6 +48,8 @@ fn each_configuration_error_exits_2_naming_the_key() {
         ("[[experiments]]\nid = \"x\"\nreward = { kind = \"bounded\", max = 0 }\n", "max"),
         ("[kafka.client]\n\"group.id\" = \"other\"\n", "group.id"),
         ("[log]\nlevel = \"loud\"\n", "log.level"),
+        ("[defaults]\nattribution_window_seconds = 0\n", "attribution_window_seconds = 0"),
+        ("[[experiments]]\nid = \"x\"\nattribution_window_seconds = -5\n", "attribution_window_seconds = -5"),
         ("[[experiments]]\nid = \"x\"\nbounds = { flor = 0.1 }\n", "`experiments[0].bounds`"),
         ("[[experiments]]\nid = \"x\"\narms = [\"a\", \"a\"]\n", "experiments[0].arms"),
         (
