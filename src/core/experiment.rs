@@ -118,6 +118,10 @@ pub struct ExperimentState {
     /// snapshots of older writers).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub clock_ms: Option<i64>,
+    /// The attribution window the pending buckets were cut under, so that a restore under
+    /// another window carries them over instead of misreading them.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub attribution: Option<Window>,
 }
 
 #[derive(Debug)]
@@ -181,6 +185,13 @@ impl Experiment {
         }
         e.version = state.version;
         e.clock_ms = state.clock_ms;
+        if state.attribution != e.spec.attribution {
+            let to = e.spec.attribution;
+            e.spec.attribution = state.attribution;
+            e.rebucket(to, e.spec.half_life_ms);
+            e.spec.attribution = to;
+            e.mature();
+        }
         e.last_weights = vec![f64::NAN; e.names.len()];
         for (j, w) in state.last_weights.into_iter().enumerate().take(e.names.len()) {
             e.last_weights[j] = w.unwrap_or(f64::NAN);
@@ -269,6 +280,7 @@ impl Experiment {
             lifecycle: self.lifecycle.clone(),
             removed: self.names.iter().zip(&self.removed).filter(|(_, r)| **r).map(|(n, _)| n.clone()).collect(),
             clock_ms: self.clock_ms,
+            attribution: self.spec.attribution,
         }
     }
 
@@ -740,6 +752,12 @@ mod tests {
         let spec = e.spec().clone();
         let restored = Experiment::restore(spec.clone(), &["a".into()], e.state()).expect("restore");
         assert_eq!(restored.state(), e.state());
+        // Restored under another window, the pending pulls move to its buckets.
+        let mut wider = spec.clone();
+        wider.attribution = Some(Window { ms: 32_000 });
+        let moved = Experiment::restore(wider, &["a".into()], e.state()).expect("restore");
+        assert_eq!(moved.arm_stats()[0].pending.pulls(), e.arm_stats()[0].pending.pulls());
+        assert!(moved.arm_stats()[0].pending.len() < e.arm_stats()[0].pending.len(), "wider buckets, fewer of them");
         assert_eq!(restored.clock_ms(), Some(19_700));
         let (pulls, pending) = (e.arm_stats()[0].pulls_total, e.arm_stats()[0].pending.pulls());
         // A longer window keeps every pending pull pending, under the new buckets.
