@@ -29,7 +29,9 @@ struct ArmHistory {
 
 fn arm_history() -> impl Strategy<Value = ArmHistory> {
     (0u64..3000, 0.0f64..=1.0, prop_oneof![4 => Just(0u64), 1 => 1u64..5]).prop_map(|(pulls, rate, excess)| {
-        ArmHistory { pulls, successes: (pulls as f64 * rate * rate).round() as u64, excess }
+        // Rewards beyond the pulls only for an arm that has had one: a reward for an arm never
+        // shown is refused (`a_reward_for_an_arm_without_impressions_is_refused_and_changes_nothing`).
+        ArmHistory { pulls, successes: (pulls as f64 * rate * rate).round() as u64, excess: if pulls > 0 { excess } else { 0 } }
     })
 }
 
