@@ -133,16 +133,15 @@ fn rewards_naming_their_impressions_are_credited_once_across_a_kill_and_a_hand_o
     assert!(a.wait_ready(Duration::from_secs(60)), "a starts");
     let mut b = cfg.start(pb);
     assert!(b.wait_ready(Duration::from_secs(60)), "b starts");
-    let producer = {
-        let (brokers, topic) = (brokers.clone(), cfg.topic("events"));
-        std::thread::spawn(move || produce_batched_slowly(&brokers, &topic, &messages))
-    };
+    // Over about 15 s: the kill falls while events still come (the hand-over back to a, once
+    // it is ready again, usually after the last of them).
+    let producer = stream_in_background(brokers.clone(), cfg.topic("events"), messages, 15.0);
     let applied_by = |s: &SidecarProcess| applied_events(&s.get("/metrics").1) + metric(&s.get("/metrics").1, "apportion_events_total", &[("kind", "reward"), ("outcome", "late")]).unwrap_or(0.0);
     wait_until(Duration::from_secs(60), || producer.is_finished() || applied_by(&a) + applied_by(&b) >= sent as f64 / 3.0);
     println!("killing a; the stream is {}", if producer.is_finished() { "over" } else { "still coming" });
     a.crash();
     wait_until(Duration::from_secs(120), || producer.is_finished() || applied_by(&b) >= sent as f64 / 2.0);
-    // A comes back while b stays: b hands partitions over to it, mid-stream if it is still on.
+    // A comes back while b stays: b hands partitions over to it.
     let mut a = cfg.start(pa);
     assert!(a.wait_ready(Duration::from_secs(330)), "a restarts");
     println!("a is back; the stream is {}", if producer.is_finished() { "over" } else { "still coming" });
@@ -183,26 +182,4 @@ fn rewards_naming_their_impressions_are_credited_once_across_a_kill_and_a_hand_o
         assert_eq!(n("matured_pulls") + n("pending_pulls"), n("pulls"), "{newest}");
     }
     assert!(a.stop() && b.stop(), "clean shutdowns");
-}
-
-/// Sends `messages` in 30 slices over about 15 s, so that the kill and the hand-over fall
-/// while events still come.
-fn produce_batched_slowly(brokers: &str, topic: &str, messages: &[(String, Vec<u8>)]) {
-    use rdkafka::config::ClientConfig;
-    use rdkafka::producer::{BaseProducer, Producer};
-    let p: BaseProducer = ClientConfig::new()
-        .set("bootstrap.servers", brokers)
-        .set("linger.ms", "20")
-        .set("queue.buffering.max.messages", "1000000")
-        .set("message.timeout.ms", "300000")
-        .create()
-        .expect("producer");
-    for chunk in messages.chunks(messages.len().div_ceil(30).max(1)) {
-        for (k, v) in chunk {
-            send(&p, topic, k, v);
-        }
-        p.poll(Duration::ZERO);
-        std::thread::sleep(Duration::from_millis(500));
-    }
-    p.flush(Duration::from_secs(300)).expect("every event delivered");
 }

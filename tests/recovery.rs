@@ -53,29 +53,6 @@ fn workload(events: usize, experiments: usize, seed: u64) -> (Vec<(String, Vec<u
     (out, want)
 }
 
-/// Streams `messages` in chunks over about `seconds`, on its own thread.
-fn stream_in_background(brokers: String, topic: String, messages: Vec<(String, Vec<u8>)>, seconds: f64) -> std::thread::JoinHandle<()> {
-    std::thread::spawn(move || {
-        let p: BaseProducer = ClientConfig::new()
-            .set("bootstrap.servers", &brokers)
-            .set("linger.ms", "20")
-            .set("queue.buffering.max.messages", "1000000")
-            .set("message.timeout.ms", "300000")
-            .create()
-            .expect("producer");
-        let chunks = 100usize;
-        let per = messages.len().div_ceil(chunks);
-        for chunk in messages.chunks(per.max(1)) {
-            for (k, v) in chunk {
-                send(&p, &topic, k, v);
-            }
-            p.poll(Duration::ZERO);
-            std::thread::sleep(Duration::from_secs_f64(seconds / chunks as f64));
-        }
-        p.flush(Duration::from_secs(300)).expect("every event delivered");
-    })
-}
-
 /// Fails, naming a few arms that differ, unless the wait for `want` succeeded (`done`); then
 /// checks the totals exactly.
 fn assert_caught_up(done: bool, last: &Totals, want: &Totals, when: &str) {

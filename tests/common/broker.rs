@@ -202,3 +202,26 @@ pub fn dead_letters_by_reason(topic: &str) -> BTreeMap<String, u64> {
     });
     out
 }
+
+/// Streams `messages` in chunks over about `seconds`, on its own thread.
+pub fn stream_in_background(brokers: String, topic: String, messages: Vec<(String, Vec<u8>)>, seconds: f64) -> std::thread::JoinHandle<()> {
+    std::thread::spawn(move || {
+        let p: BaseProducer = ClientConfig::new()
+            .set("bootstrap.servers", &brokers)
+            .set("linger.ms", "20")
+            .set("queue.buffering.max.messages", "1000000")
+            .set("message.timeout.ms", "300000")
+            .create()
+            .expect("producer");
+        let chunks = 100usize;
+        let per = messages.len().div_ceil(chunks);
+        for chunk in messages.chunks(per.max(1)) {
+            for (k, v) in chunk {
+                send(&p, &topic, k, v);
+            }
+            p.poll(Duration::ZERO);
+            std::thread::sleep(Duration::from_secs_f64(seconds / chunks as f64));
+        }
+        p.flush(Duration::from_secs(300)).expect("every event delivered");
+    })
+}
