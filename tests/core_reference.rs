@@ -7,7 +7,9 @@
 
 use std::path::PathBuf;
 
-use apportion::core::beta::prob_best;
+use apportion::core::beta::{prob_best, prob_best_and_max};
+use apportion::core::decision::decide;
+use apportion::core::{Experiment, ExperimentSpec, Observation, PolicyName, PolicySpec, RewardModel};
 use apportion::core::interval::wilson;
 use apportion::core::kl::{bernoulli_kl, kl_ucb_budget, kl_ucb_index};
 use serde_json::Value;
@@ -202,4 +204,67 @@ fn kl_ucb_index_matches_mpmath_bisection() {
         assert!(got >= mean && got <= 1.0, "KL-UCB index {got} outside [mean {mean}, 1]");
     }
     eprintln!("kl_ucb_index: {} cases, largest difference {worst:.2e}", cases.len());
+}
+
+/// The stated accuracy of E[max] and of the expected loss (README, "Decision figures"): 1e-5
+/// of the reward range, the quadrature's own accuracy (its probabilities of best are within
+/// 3.3e-5, against a contract of 0.002).
+const EXPECTED_LOSS_ACCURACY: f64 = 1e-5;
+
+#[test]
+fn expected_loss_of_the_leader_matches_scipy_quadrature_on_ties_crowds_and_rare_events() {
+    // E[max θ] by scipy.integrate.quad of 1 − Π F_j (scipy.stats.beta), checked against mpmath
+    // and a seeded Monte Carlo: tests/reference/expected_loss.py (versions in the file).
+    let reference = Reference::load("expected_loss.json");
+    let cases = reference.cases(None);
+    assert!(cases.len() >= 20, "expected_loss.json holds only {} cases", cases.len());
+    let mut worst = (0.0f64, String::new());
+    for case in cases {
+        let name = case["name"].as_str().unwrap_or("?");
+        let (alpha, beta) = (nums(case, "alpha"), nums(case, "beta"));
+        let leader = case["leader"].as_u64().unwrap_or_else(|| panic!("{name}: no leader")) as usize;
+        let mut p = vec![0.0; alpha.len()];
+        let e = prob_best_and_max(&alpha, &beta, &mut p);
+        let loss = e - alpha[leader] / (alpha[leader] + beta[leader]);
+        let (want_e, want_loss) = (num(case, "expected_max"), num(case, "expected_loss"));
+        let diff = (e - want_e).abs().max((loss.max(0.0) - want_loss).abs());
+        if diff > worst.0 {
+            worst = (diff, name.to_string());
+        }
+        assert!(
+            diff <= EXPECTED_LOSS_ACCURACY,
+            "{name}: E[max] {e} (scipy {want_e}), loss {loss} (scipy {want_loss}); {}",
+            reference.versions
+        );
+    }
+    eprintln!("expected loss, largest difference from scipy: {:.2e} ({})", worst.0, worst.1);
+}
+
+#[test]
+fn probability_of_best_is_the_thompson_quadrature_for_every_policy() {
+    // The same arms under UCB1 and under Thompson with its default uniform prior: the report's
+    // best_probability equals the Thompson weights before bounds, computed by the policy.
+    let arms: Vec<String> = ["a", "b", "c"].iter().map(|s| s.to_string()).collect();
+    let fed = |name: PolicyName| {
+        let mut e = Experiment::new(ExperimentSpec::new(PolicySpec::new(name), RewardModel::Bernoulli), &arms).expect("experiment");
+        for (j, (n, s)) in [(400u64, 30u64), (380, 24), (120, 6)].into_iter().enumerate() {
+            e.observe(j, 0, Observation::Impression { count: n }).expect("impression");
+            for _ in 0..s {
+                e.observe(j, 0, Observation::reward(1.0)).expect("reward");
+            }
+        }
+        e
+    };
+    let ucb = fed(PolicyName::Ucb1).report(0);
+    let thompson = fed(PolicyName::Thompson);
+    let mut raw = vec![0.0; 3];
+    let inputs = thompson.inputs(0);
+    apportion::core::policy::PolicySpec::new(PolicyName::Thompson).build().expect("policy").weights(&inputs, 1, &mut raw);
+    for (a, w) in ucb.arms.iter().zip(&raw) {
+        assert_eq!(a.best_probability.to_bits(), w.to_bits(), "{} vs {}", a.best_probability, w);
+    }
+    let d = decide(&[(400.0, 30.0), (380.0, 24.0), (120.0, 6.0)], 1.0, Some(0));
+    assert_eq!(d.best_probability, ucb.arms.iter().map(|a| a.best_probability).collect::<Vec<_>>());
+    assert_eq!(d.expected_loss, ucb.expected_loss);
+    assert!(ucb.expected_loss > 0.0 && ucb.expected_loss < 0.01, "{}", ucb.expected_loss);
 }

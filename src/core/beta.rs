@@ -80,6 +80,13 @@ impl Posterior {
     }
 }
 
+/// The Beta posterior of an arm with `pulls` (effective) pulls and `successes` (reward scaled to
+/// [0, 1]) under a Beta(`prior`) prior: successes clamped to the pulls, failures the rest.
+pub fn posterior(prior: (f64, f64), pulls: f64, successes: f64) -> (f64, f64) {
+    let s = crate::core::interval::clamp_sum(pulls, successes, 1.0);
+    (prior.0 + s, prior.1 + (pulls - s).max(0.0))
+}
+
 fn logs(x: f64) -> (f64, f64) {
     (x.ln(), (-x).ln_1p())
 }
@@ -87,15 +94,25 @@ fn logs(x: f64) -> (f64, f64) {
 /// Probability that each arm is the best, for Beta(`alpha[k]`, `beta[k]`) posteriors with both
 /// parameters ≥ 1 (the priors the policies allow). `out` receives one probability per arm.
 pub fn prob_best(alpha: &[f64], beta: &[f64], out: &mut [f64]) {
+    prob_best_and_max(alpha, beta, out);
+}
+
+/// [`prob_best`], and the posterior expectation of the largest arm mean, E[max θⱼ], from the
+/// same grid: E[max θⱼ] = ∫₀¹ (1 − Πⱼ Fⱼ(x)) dx = U − ∫ₛᵁ Πⱼ Fⱼ(x) dx, where s is the grid's
+/// start (below it some posterior has no mass, so the product is 0) and U its end (above it
+/// every CDF is 1). The product is integrated by Simpson's rule on each grid segment with the
+/// CDFs the probabilities use.
+pub fn prob_best_and_max(alpha: &[f64], beta: &[f64], out: &mut [f64]) -> f64 {
     let k = alpha.len();
     debug_assert!(beta.len() == k && out.len() == k);
     out.iter_mut().for_each(|p| *p = 0.0);
+    let mean = |j: usize| alpha[j] / (alpha[j] + beta[j]);
     if k == 0 {
-        return;
+        return 0.0;
     }
     if k == 1 {
         out[0] = 1.0;
-        return;
+        return mean(0);
     }
 
     let mut reach = Vec::with_capacity(k);
@@ -110,7 +127,7 @@ pub fn prob_best(alpha: &[f64], beta: &[f64], out: &mut [f64]) {
     let contenders: Vec<usize> = (0..k).filter(|&j| reach[j].3 > lower).collect();
     if contenders.len() == 1 {
         out[contenders[0]] = 1.0;
-        return;
+        return mean(contenders[0]);
     }
 
     let start = contenders.iter().map(|&j| reach[j].2).fold(1.0, f64::min);
@@ -166,6 +183,7 @@ pub fn prob_best(alpha: &[f64], beta: &[f64], out: &mut [f64]) {
     let mut mid_cdf = vec![0.0; c];
     let mut next_cdf = vec![0.0; c];
     let mut acc = vec![0.0; c];
+    let mut below_max = 0.0;
     // Values of Π_{j≠k} F_j at the segment's left end, midpoint and right end, for each k.
     let mut others = [vec![0.0; c], vec![0.0; c], vec![0.0; c]];
 
@@ -193,6 +211,8 @@ pub fn prob_best(alpha: &[f64], beta: &[f64], out: &mut [f64]) {
             let g1 = right[j].0 * others[2][j];
             acc[j] += h / 6.0 * (g0 + 4.0 * gm + g1);
         }
+        let all = |v: &[f64]| v.iter().product::<f64>();
+        below_max += h / 6.0 * (all(&cdf) + 4.0 * all(&mid_cdf) + all(&next_cdf));
         std::mem::swap(&mut left, &mut right);
         std::mem::swap(&mut cdf, &mut next_cdf);
     }
@@ -201,6 +221,10 @@ pub fn prob_best(alpha: &[f64], beta: &[f64], out: &mut [f64]) {
     for (j, &arm) in contenders.iter().enumerate() {
         out[arm] = if total > 0.0 { acc[j] / total } else { 1.0 / c as f64 };
     }
+    // E[max] is at least every arm's own mean; the clamp only guards the quadrature's last
+    // digits.
+    let best_mean = (0..k).map(mean).fold(0.0, f64::max);
+    (upper - below_max).clamp(best_mean, 1.0)
 }
 
 /// out[k] = Π_{j≠k} v[j], by prefix and suffix products (no division, so a zero is harmless).
@@ -228,6 +252,17 @@ mod tests {
         assert!((out[0] - 0.5).abs() < 1e-9, "{out:?}");
         prob_best(&[40.0, 40.0], &[900.0, 900.0], &mut out);
         assert!((out[0] - 0.5).abs() < 1e-9, "{out:?}");
+    }
+
+    #[test]
+    fn the_expected_maximum_of_two_uniforms_is_two_thirds() {
+        // X, Y ~ U(0,1): E[max] = ∫ 2x·x dx = 2/3 (closed form); Beta(2,1) and U(0,1):
+        // P(max ≤ x) = x³, E[max] = 3/4.
+        let mut out = [0.0; 2];
+        let m = prob_best_and_max(&[1.0, 1.0], &[1.0, 1.0], &mut out);
+        assert!((m - 2.0 / 3.0).abs() < 1e-6, "{m}");
+        let m = prob_best_and_max(&[1.0, 2.0], &[1.0, 1.0], &mut out);
+        assert!((m - 0.75).abs() < 1e-6, "{m}");
     }
 
     #[test]

@@ -7,6 +7,7 @@
 
 pub mod attribution;
 pub mod beta;
+pub mod decision;
 pub mod draw;
 pub mod experiment;
 pub mod bounds;

@@ -3,6 +3,7 @@
 
 use serde::Serialize;
 
+use super::decision::decide;
 use super::interval::{clamp_sum, empirical_bernstein, wilson, Interval};
 use super::reward::RewardModel;
 use super::stats::{reference_ms, ArmStats, HalfLife};
@@ -26,6 +27,8 @@ pub struct ArmReport {
     pub last_pull_ms: Option<i64>,
     /// Rewards beyond the pulls under a 0/1 model, left out of the policy's success count.
     pub excess_rewards: f64,
+    /// Posterior probability that this arm is the best (`core::decision`), for every policy.
+    pub best_probability: f64,
 }
 
 impl ArmReport {
@@ -53,6 +56,9 @@ pub struct Report {
     /// every pull ever made at a gap seen through recent traffic alone would mix two different
     /// counts.
     pub regret_estimate: f64,
+    /// Expected shortfall per impression, in reward units, of sending everything to the
+    /// leader, under the posterior (`core::decision`).
+    pub expected_loss: f64,
 }
 
 /// Mean and interval of one arm in reward units, its sums discounted to `reference_ms` (see
@@ -87,6 +93,7 @@ pub fn report(stats: &[ArmStats], model: RewardModel, now_ms: i64, half_life: Ha
                 undecided: false,
                 last_pull_ms: s.last_pull_ms,
                 excess_rewards: if model.is_binary() { s.excess_rewards() } else { 0.0 },
+                best_probability: 0.0,
             }
         })
         .collect();
@@ -116,7 +123,18 @@ pub fn report(stats: &[ArmStats], model: RewardModel, now_ms: i64, half_life: Ha
             }
         }
     }
-    Report { arms, leader, regret_estimate: regret }
+    let sums: Vec<(f64, f64)> = stats
+        .iter()
+        .map(|s| {
+            let (n, sum, _) = s.at(reference, half_life);
+            (n, clamp_sum(n, sum, model.max()))
+        })
+        .collect();
+    let decision = decide(&sums, model.max(), leader);
+    for (a, p) in arms.iter_mut().zip(decision.best_probability) {
+        a.best_probability = p;
+    }
+    Report { arms, leader, regret_estimate: regret, expected_loss: decision.expected_loss }
 }
 
 /// 1 − the leader's weight: the share of traffic still spent away from the current best.

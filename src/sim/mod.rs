@@ -417,7 +417,10 @@ fn one_run(spec: &SimSpec, policy: &PolicySpec, cps: &[u64], seed: u64, watch: &
             exp.choose(now, &mut rng)
         } else {
             if t % spec.batch == 0 {
-                weights = exp.allocate(now, spec.batch).weights;
+                // Weights alone: the figures a publish reports beside them are not needed here.
+                exp.mature();
+                weights = exp.weights(now, spec.batch);
+                exp.commit(&weights);
             }
             crate::core::draw::weighted(weights.iter().copied(), rng.gen()).unwrap_or(weights.len().saturating_sub(1))
         };

@@ -24,7 +24,7 @@ impl Serialize for ArmSummary<'_> {
     fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
         use serde::ser::SerializeMap;
         let a = self.0;
-        let mut m = s.serialize_map(Some(7))?;
+        let mut m = s.serialize_map(Some(8))?;
         m.serialize_entry("pulls", &a.pulls)?;
         m.serialize_entry("matured_pulls", &a.matured_pulls())?;
         m.serialize_entry("pending_pulls", &a.pending_pulls)?;
@@ -32,6 +32,7 @@ impl Serialize for ArmSummary<'_> {
         m.serialize_entry("mean", &a.mean)?;
         m.serialize_entry("ci_low", &a.ci_low)?;
         m.serialize_entry("ci_high", &a.ci_high)?;
+        m.serialize_entry("best_probability", &a.best_probability)?;
         m.end()
     }
 }
@@ -50,6 +51,7 @@ pub struct WeightsMessage<'a> {
     pub weights: BTreeMap<&'a str, f64>,
     pub arms: BTreeMap<&'a str, ArmSummary<'a>>,
     pub regret_estimate: f64,
+    pub expected_loss: f64,
 }
 
 impl<'a> WeightsMessage<'a> {
@@ -69,6 +71,7 @@ impl<'a> WeightsMessage<'a> {
             weights: (0..names.len()).filter(active).map(|j| (names[j].as_str(), alloc.weights[j])).collect(),
             arms: (0..names.len()).filter(active).map(|j| (names[j].as_str(), ArmSummary(&alloc.report.arms[j]))).collect(),
             regret_estimate: alloc.report.regret_estimate,
+            expected_loss: alloc.report.expected_loss,
         }
     }
 }
@@ -207,6 +210,7 @@ fn row(partition: i32, exp: &Experiment, report: &Report, published_ms: Option<i
         version: exp.version(),
         leader: report.leader,
         regret_estimate: report.regret_estimate,
+        expected_loss: report.expected_loss,
         exploration: published.then(|| crate::core::report::exploration_ratio(weights, report.leader)),
         published_ms,
         arms: exp

@@ -147,6 +147,7 @@ mod tests {
         let figures = ArmReport {
             pulls: 1,
             pending_pulls: 0,
+            best_probability: 1.0,
             reward: 0.0,
             mean: 0.0,
             ci_low: 0.0,

@@ -38,6 +38,8 @@ pub struct ExperimentRow {
     /// Index into `arms`.
     pub leader: Option<usize>,
     pub regret_estimate: f64,
+    /// Expected loss per impression of sending everything to the leader (`core::decision`).
+    pub expected_loss: f64,
     /// 1 − the leader's weight, from the last publish.
     pub exploration: Option<f64>,
     pub published_ms: Option<i64>,
@@ -54,7 +56,7 @@ type ArmValue = fn(&ArmRow) -> Option<f64>;
 type ExperimentValue = fn(&ExperimentRow) -> Option<f64>;
 
 /// Per-arm families: name, type, help, value (None: no sample).
-const ARM_FAMILIES: [(&str, &str, &str, ArmValue); 9] = [
+const ARM_FAMILIES: [(&str, &str, &str, ArmValue); 10] = [
     (names::ARM_PULLS, "counter", "Impressions applied to the arm", |a| Some(a.figures.pulls as f64)),
     (names::ARM_REWARD, "counter", "Reward applied to the arm, in reward units", |a| Some(a.figures.reward)),
     (names::ARM_MEAN, "gauge", "Estimated mean reward of the arm", |a| Some(a.figures.mean)),
@@ -89,6 +91,12 @@ const ARM_FAMILIES: [(&str, &str, &str, ArmValue); 9] = [
         "Impressions waiting for their attribution window to close; not yet in the mean, the interval or the policy's inputs",
         |a| Some(a.figures.pending_pulls as f64),
     ),
+    (
+        names::ARM_BEST_PROBABILITY,
+        "gauge",
+        "Posterior probability that the arm is the best (uniform prior), whatever the policy",
+        |a| Some(a.figures.best_probability),
+    ),
 ];
 
 /// How many families [`Table::write_family`] writes.
@@ -96,7 +104,7 @@ pub const FAMILIES: usize = ARM_FAMILIES.len() + EXPERIMENT_FAMILIES.len();
 
 /// Per-experiment families. The state family carries the state as a label, with value 1
 /// ([`Table::write_family`] adds it).
-const EXPERIMENT_FAMILIES: [(&str, &str, &str, ExperimentValue); 7] = [
+const EXPERIMENT_FAMILIES: [(&str, &str, &str, ExperimentValue); 8] = [
     (
         names::EXPERIMENT_REGRET,
         "gauge",
@@ -104,6 +112,12 @@ const EXPERIMENT_FAMILIES: [(&str, &str, &str, ExperimentValue); 7] = [
         |e| Some(e.regret_estimate),
     ),
     (names::EXPERIMENT_EXPLORATION, "gauge", "1 minus the leader's weight", |e| e.exploration),
+    (
+        names::EXPERIMENT_EXPECTED_LOSS,
+        "gauge",
+        "Expected shortfall per impression, in reward units, of sending everything to the leader, under the posterior",
+        |e| Some(e.expected_loss),
+    ),
     (
         names::WEIGHTS_VERSION,
         "gauge",
@@ -254,6 +268,7 @@ impl Serialize for ExperimentRow {
             version: u64,
             leader: Option<&'a str>,
             regret_estimate: f64,
+            expected_loss: f64,
             arms: Arms<'a>,
         }
         let l = &self.lifecycle;
@@ -268,6 +283,7 @@ impl Serialize for ExperimentRow {
             version: self.version,
             leader: self.leader.and_then(|l| self.arms.get(l)).map(|a| a.name.as_str()),
             regret_estimate: self.regret_estimate,
+            expected_loss: self.expected_loss,
             arms: Arms(&self.arms),
         }
         .serialize(s)
@@ -279,7 +295,7 @@ struct ArmJson<'a>(&'a ArmRow);
 impl Serialize for ArmJson<'_> {
     fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
         let (a, f) = (self.0, &self.0.figures);
-        let mut m = s.serialize_map(Some(11))?;
+        let mut m = s.serialize_map(Some(12))?;
         m.serialize_entry("pulls", &f.pulls)?;
         m.serialize_entry("matured_pulls", &f.matured_pulls())?;
         m.serialize_entry("pending_pulls", &f.pending_pulls)?;
@@ -289,6 +305,7 @@ impl Serialize for ArmJson<'_> {
         m.serialize_entry("ci_high", &f.ci_high)?;
         m.serialize_entry("weight", &a.weight)?;
         m.serialize_entry("undecided", &f.undecided)?;
+        m.serialize_entry("best_probability", &f.best_probability)?;
         m.serialize_entry("excess_rewards", &f.excess_rewards)?;
         m.serialize_entry("removed", &a.removed)?;
         m.end()
@@ -317,6 +334,7 @@ mod tests {
             figures: ArmReport {
                 pulls,
                 pending_pulls: 0,
+                best_probability: 0.5,
                 reward: 3.0,
                 mean: 0.25,
                 ci_low: 0.1,
@@ -338,6 +356,7 @@ mod tests {
                 version: 3,
                 leader: Some(1),
                 regret_estimate: 1.5,
+                expected_loss: 0.01,
                 exploration: Some(0.4),
                 published_ms: Some(1_764_547_201_000),
                 arms: vec![arm("x", 12, Some(0.4)), arm("y\\z", 8, None)],

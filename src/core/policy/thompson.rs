@@ -12,8 +12,7 @@ use rand::RngCore;
 use rand_distr::{Beta, Distribution};
 
 use super::{ArmInput, Policy, PolicyName};
-use crate::core::beta::prob_best;
-use crate::core::interval::clamp_sum;
+use crate::core::beta::{posterior, prob_best};
 
 #[derive(Clone, Copy, Debug)]
 pub struct Thompson {
@@ -23,8 +22,7 @@ pub struct Thompson {
 
 impl Thompson {
     fn posterior(&self, arm: &ArmInput) -> (f64, f64) {
-        let s = clamp_sum(arm.pulls, arm.successes, 1.0);
-        (self.prior_alpha + s, self.prior_beta + (arm.pulls - s).max(0.0))
+        posterior((self.prior_alpha, self.prior_beta), arm.pulls, arm.successes)
     }
 }
 
