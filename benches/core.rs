@@ -103,6 +103,17 @@ fn weights(c: &mut Criterion) {
     g.finish();
 }
 
+/// The figures reported beside each publish (means, intervals, probability of best, expected
+/// loss), whatever the policy.
+fn report(c: &mut Criterion) {
+    let mut g = c.benchmark_group("report");
+    for arms in [2, 10, 50] {
+        let e = experiment(PolicyName::Ucb1, arms, 5_000);
+        g.bench_function(format!("{arms}-arms"), |b| b.iter(|| black_box(e.report(0))));
+    }
+    g.finish();
+}
+
 fn fleet(c: &mut Criterion) {
     let fleet: Vec<Experiment> = (0..1000).map(|i| experiment(PolicyName::Thompson, 10, 1000 + i)).collect();
     c.bench_function("all_weights/1000-experiments-x-10-arms/thompson", |b| {
@@ -110,5 +121,5 @@ fn fleet(c: &mut Criterion) {
     });
 }
 
-criterion_group!(benches, apply, decode, weights, fleet);
+criterion_group!(benches, apply, decode, weights, report, fleet);
 criterion_main!(benches);
