@@ -110,6 +110,12 @@ impl Pending {
     /// Adds to bucket `index`, which must not have matured. O(1) for the usual case of the
     /// newest bucket; an older one is found by binary search among at most [`MAX_BUCKETS`].
     pub fn add(&mut self, index: i64, pulls: u64, reward: f64) {
+        self.add_sums(index, &Bucket { index, pulls, reward, reward_sq: reward * reward });
+    }
+
+    /// Adds a whole bucket's sums to bucket `index` (also a bucket carried over to another
+    /// window).
+    pub fn add_sums(&mut self, index: i64, sums: &Bucket) {
         let at = match self.buckets.back() {
             Some(b) if b.index == index => self.buckets.len() - 1,
             Some(b) if b.index < index => self.insert(self.buckets.len(), index),
@@ -120,18 +126,9 @@ impl Pending {
             },
         };
         let b = &mut self.buckets[at];
-        b.pulls = b.pulls.saturating_add(pulls);
-        b.reward += reward;
-        b.reward_sq += reward * reward;
-    }
-
-    /// Adds a whole bucket's sums to bucket `index` (a bucket carried over to another window).
-    pub fn add_sums(&mut self, index: i64, b: &Bucket) {
-        self.add(index, b.pulls, 0.0);
-        if let Some(t) = self.buckets.iter_mut().rev().find(|t| t.index == index) {
-            t.reward += b.reward;
-            t.reward_sq += b.reward_sq;
-        }
+        b.pulls = b.pulls.saturating_add(sums.pulls);
+        b.reward += sums.reward;
+        b.reward_sq += sums.reward_sq;
     }
 
     fn insert(&mut self, at: usize, index: i64) -> usize {
