@@ -11,6 +11,7 @@ use apportion::core::beta::{prob_best, prob_best_and_max};
 use apportion::core::decision::decide;
 use apportion::core::{Experiment, ExperimentSpec, Observation, PolicyName, PolicySpec, RewardModel};
 use apportion::core::interval::wilson;
+use apportion::core::sequence::confidence_sequence;
 use apportion::core::kl::{bernoulli_kl, kl_ucb_budget, kl_ucb_index};
 use serde_json::Value;
 
@@ -267,4 +268,35 @@ fn probability_of_best_is_the_thompson_quadrature_for_every_policy() {
     assert_eq!(d.best_probability, ucb.arms.iter().map(|a| a.best_probability).collect::<Vec<_>>());
     assert_eq!(d.expected_loss, ucb.expected_loss);
     assert!(ucb.expected_loss > 0.0 && ucb.expected_loss < 0.01, "{}", ucb.expected_loss);
+}
+
+#[test]
+fn confidence_sequence_ends_match_an_independent_root_search() {
+    // Robbins (1970) uniform-mixture sequence: the roots of ln B(1+S, 1+n−S) − S ln p −
+    // (n−S) ln(1−p) = ln(1/α), found by bisection in mpmath at 50 digits and checked against
+    // scipy.special.betaln with scipy.optimize.brentq: tests/reference/confidence_sequence.py
+    // (versions in the file).
+    let reference = Reference::load("confidence_sequence.json");
+    let cases = reference.cases(None);
+    assert!(cases.len() >= 20, "confidence_sequence.json holds only {} cases", cases.len());
+    let mut worst = (0.0f64, String::new());
+    for case in cases {
+        let name = case["name"].as_str().unwrap_or("?");
+        let (s, n, alpha) = (num(case, "successes"), num(case, "trials"), num(case, "alpha"));
+        let got = confidence_sequence(s, n, alpha);
+        let diff = (got.low - num(case, "low")).abs().max((got.high - num(case, "high")).abs());
+        if diff > worst.0 {
+            worst = (diff, format!("{name} at α = {alpha}"));
+        }
+        assert!(
+            diff <= 1e-9,
+            "{name} ({s} of {n}, α = {alpha}): [{}, {}], reference [{}, {}]; {}",
+            got.low,
+            got.high,
+            num(case, "low"),
+            num(case, "high"),
+            reference.versions
+        );
+    }
+    eprintln!("confidence sequence, largest difference from the reference: {:.2e} ({})", worst.0, worst.1);
 }
