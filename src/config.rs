@@ -10,6 +10,7 @@ use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
+use crate::core::decision::Settle;
 use crate::core::{Bounds, Experiment, ExperimentSpec, PolicyName, PolicySpec, RewardModel, Window};
 use crate::event::valid_name;
 
@@ -214,6 +215,8 @@ pub struct Defaults {
     /// old, with the rewards that came for them meanwhile; later rewards are counted as late
     /// and not applied. Off when unset (README, "Rewards that arrive late").
     pub attribution_window_seconds: Option<f64>,
+    /// When an experiment counts as settled (README, "Is it done?").
+    pub settle: Settle,
     /// Experiments created on first sight are retired after this many seconds without an
     /// impression (event time against the clock); off when unset.
     pub idle_retire_seconds: Option<f64>,
@@ -232,6 +235,7 @@ impl Default for Defaults {
             guardrails: None,
             half_life_seconds: None,
             attribution_window_seconds: None,
+            settle: Settle::default(),
             idle_retire_seconds: None,
             retire_grace_seconds: 86_400.0,
         }
@@ -256,6 +260,10 @@ pub struct ExperimentConfig {
     pub attribution_window_seconds: Option<f64>,
     /// `false`: impressions of arms not in `arms` are dead-lettered `unknown-arm`.
     pub accept_new_arms: Option<bool>,
+    /// The arm the others' lift is measured against; one of `arms`.
+    pub control_arm: Option<String>,
+    /// Over `defaults.settle`, as a whole.
+    pub settle: Option<Settle>,
 }
 
 /// An experiment as it will run: declared settings over the defaults.
@@ -468,6 +476,14 @@ impl Config {
                 return Err(format!("{at} ({}).arms: {a:?}; 1–64 characters from [A-Za-z0-9._-]", e.id));
             }
         }
+        if let Some(c) = &r.spec.control_arm {
+            if !valid_name(c) {
+                return Err(format!("{at}.control_arm ({}) = {c:?}; 1–64 characters from [A-Za-z0-9._-]", e.id));
+            }
+            if !r.arms.is_empty() && !r.arms.contains(c) {
+                return Err(format!("{at}.control_arm ({}) = {c:?} is not one of its arms: {}", e.id, r.arms.join(", ")));
+            }
+        }
         if !r.spec.accept_new_arms && r.arms.is_empty() {
             return Err(format!("{at}.accept_new_arms ({}) = false needs declared arms; name them in arms", e.id));
         }
@@ -506,6 +522,8 @@ impl Config {
             max_arms: self.limits.arms_per_experiment,
             accept_new_arms: true,
             attribution: Self::window("attribution_window_seconds", d.attribution_window_seconds)?,
+            control_arm: None,
+            settle: d.settle.clone(),
         };
         Experiment::new(spec.clone(), &[])?;
         Ok(spec)
@@ -535,6 +553,8 @@ impl Config {
                 max_arms: self.limits.arms_per_experiment,
                 accept_new_arms: e.accept_new_arms.unwrap_or(true),
                 attribution: Self::window("attribution_window_seconds", e.attribution_window_seconds.or(d.attribution_window_seconds))?,
+                control_arm: e.control_arm.clone(),
+                settle: e.settle.clone().unwrap_or_else(|| d.settle.clone()),
             },
         })
     }

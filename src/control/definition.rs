@@ -5,6 +5,7 @@
 use serde::{Deserialize, Serialize};
 
 use crate::config::{Config, ExperimentConfig, ResolvedExperiment};
+use crate::core::decision::Settle;
 use crate::core::{Bounds, Lifecycle, PolicySpec, RewardModel, State};
 use crate::event::valid_name;
 
@@ -39,9 +40,12 @@ pub struct Definition {
     /// Over `defaults.attribution_window_seconds` when absent or null.
     #[serde(default)]
     pub attribution_window_seconds: Option<f64>,
-    /// The arm others are compared with; checked and kept.
+    /// The arm the others' lift is measured against.
     #[serde(default)]
     pub control_arm: Option<String>,
+    /// Over `defaults.settle` when absent or null.
+    #[serde(default)]
+    pub settle: Option<Settle>,
     /// The arm a concluded experiment sends its traffic to.
     #[serde(default)]
     pub winner: Option<String>,
@@ -103,6 +107,8 @@ impl Definition {
             half_life_seconds: self.half_life_seconds,
             attribution_window_seconds: self.attribution_window_seconds,
             accept_new_arms: self.accept_new_arms,
+            control_arm: self.control_arm.clone(),
+            settle: self.settle.clone(),
         }
     }
 
@@ -120,7 +126,8 @@ impl Definition {
             bounds: e.bounds.clone(),
             half_life_seconds: e.half_life_seconds,
             attribution_window_seconds: e.attribution_window_seconds,
-            control_arm: None,
+            control_arm: e.control_arm.clone(),
+            settle: e.settle.clone(),
             winner: None,
             changed_by: None,
             changed_at_ms: None,
@@ -159,9 +166,6 @@ impl Definition {
             (None, State::Concluded) => return Err(format!("definition ({id}): state = \"concluded\" needs a winner, one of its arms")),
             (Some(w), s) => return Err(format!("definition ({id}).winner = {w:?} with state = {s:?}; a winner belongs to a concluded experiment", s = s.as_str())),
             (None, _) => {}
-        }
-        if let Some(c) = &self.control_arm {
-            named("control_arm", c)?;
         }
         for (key, v, most) in [("changed_by", &self.changed_by, MAX_BY), ("note", &self.note, MAX_NOTE)] {
             if let Some(v) = v {

@@ -13,8 +13,51 @@
 //! posterior expectation of max θⱼ − θ_leader, per impression, in reward units. Both come from
 //! one deterministic quadrature (`beta::prob_best_and_max`), checked against scipy in
 //! `tests/core_reference.rs`.
+//!
+//! [`Settle`] is the rule that reads these figures as "done": the leader is very probably the
+//! best and choosing it now costs little, with enough data on every arm.
+
+use serde::{Deserialize, Serialize};
 
 use super::beta::{posterior, prob_best_and_max};
+
+/// When an experiment counts as settled (README, "Is it done?"): the leader's
+/// `best_probability` is at least `best_probability`, the expected loss of choosing it is at
+/// most `relative_loss` times its mean, and every arm still in the experiment has at least
+/// `min_pulls` matured pulls. With `auto_conclude` a settled, learning experiment concludes
+/// itself on the leader through a control record.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct Settle {
+    pub best_probability: f64,
+    pub relative_loss: f64,
+    pub min_pulls: u64,
+    pub auto_conclude: bool,
+}
+
+impl Default for Settle {
+    fn default() -> Self {
+        Settle { best_probability: 0.95, relative_loss: 0.01, min_pulls: 1000, auto_conclude: false }
+    }
+}
+
+impl Settle {
+    pub fn validate(&self) -> Result<(), String> {
+        if !(self.best_probability > 0.5 && self.best_probability < 1.0) {
+            return Err(format!("settle.best_probability = {}; it must be above 0.5 and below 1", self.best_probability));
+        }
+        if !(self.relative_loss.is_finite() && self.relative_loss > 0.0 && self.relative_loss < 1.0) {
+            return Err(format!("settle.relative_loss = {}; it must be above 0 and below 1", self.relative_loss));
+        }
+        Ok(())
+    }
+
+    /// Whether figures with the leader's `best_probability` and `mean`, an `expected_loss`, and
+    /// `fewest_pulls` matured pulls on the least-pulled active arm, meet the rule.
+    pub fn is_met(&self, best_probability: f64, mean: f64, expected_loss: f64, fewest_pulls: u64) -> bool {
+        fewest_pulls >= self.min_pulls && best_probability >= self.best_probability && expected_loss <= self.relative_loss * mean
+    }
+}
 
 /// The decision figures of one experiment.
 #[derive(Clone, Debug, PartialEq)]

@@ -5,10 +5,11 @@ use serde::{Deserialize, Serialize};
 
 use super::attribution::{Bucket, Pending, Window};
 use super::bounds::Bounds;
+use super::decision::Settle;
 use super::interval::clamp_sum;
 use super::lifecycle::{Lifecycle, State};
 use super::policy::{ArmInput, Policy, PolicySpec};
-use super::report::{report, Report};
+use super::report::{report, Judged, Report};
 use super::reward::RewardModel;
 use super::stats::{reference_ms, ArmStats};
 
@@ -30,6 +31,12 @@ pub struct ExperimentSpec {
     /// rewards attributed to it (`core::attribution`). `None`: every pull counts at once.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub attribution: Option<Window>,
+    /// The arm the others' lift is measured against.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub control_arm: Option<String>,
+    /// When the experiment counts as settled, and whether it then concludes itself.
+    #[serde(default)]
+    pub settle: Settle,
 }
 
 fn accept_by_default() -> bool {
@@ -38,7 +45,7 @@ fn accept_by_default() -> bool {
 
 impl ExperimentSpec {
     pub fn new(policy: PolicySpec, reward: RewardModel) -> Self {
-        ExperimentSpec { policy, reward, bounds: Bounds::default(), half_life_ms: None, max_arms: usize::MAX, accept_new_arms: true, attribution: None }
+        ExperimentSpec { policy, reward, bounds: Bounds::default(), half_life_ms: None, max_arms: usize::MAX, accept_new_arms: true, attribution: None, control_arm: None, settle: Settle::default() }
     }
 }
 
@@ -148,6 +155,7 @@ impl Experiment {
     /// A new experiment with the declared `arms` (possibly none: arms then join on first sight).
     pub fn new(spec: ExperimentSpec, arms: &[String]) -> Result<Self, String> {
         spec.reward.validate()?;
+        spec.settle.validate()?;
         spec.bounds.validate(arms)?;
         let policy = spec.policy.build()?;
         let mut e = Experiment {
@@ -211,6 +219,7 @@ impl Experiment {
     /// The definition has passed the same checks as [`Experiment::new`]'s.
     pub fn redefine(&mut self, spec: ExperimentSpec, arms: &[String], lifecycle: Lifecycle, changed_at_ms: i64) -> Result<(), String> {
         spec.reward.validate()?;
+        spec.settle.validate()?;
         spec.bounds.validate(arms)?;
         self.policy = spec.policy.build()?;
         if spec.attribution != self.spec.attribution {
@@ -455,9 +464,10 @@ impl Experiment {
             .collect()
     }
 
-    /// Per-arm means, intervals, leader and regret estimate as of `now_ms`.
+    /// Per-arm means, intervals, leader, regret estimate and decision figures as of `now_ms`.
     pub fn report(&self, now_ms: i64) -> Report {
-        report(&self.stats, self.spec.reward, now_ms, self.spec.half_life_ms)
+        let control = self.spec.control_arm.as_deref().and_then(|c| self.arm(c));
+        report(&self.stats, &self.spec, &Judged { control, removed: &self.removed }, now_ms)
     }
 
     /// The arm one impression would go to (the simulator's batches of one).

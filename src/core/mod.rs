@@ -16,6 +16,7 @@ pub mod kl;
 pub mod lifecycle;
 pub mod policy;
 pub mod report;
+pub mod sequence;
 pub mod reward;
 pub mod stats;
 

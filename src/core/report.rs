@@ -1,12 +1,24 @@
-//! Figures derived from an experiment's statistics: per-arm means and intervals, the leader,
-//! undecided arms, the exploration ratio and the cumulative regret estimate.
+//! Figures derived from an experiment's statistics: per-arm means, intervals and confidence
+//! sequences, the leader, undecided arms, lift over the control arm, the exploration ratio,
+//! the cumulative regret estimate and the decision figures.
 
 use serde::Serialize;
 
 use super::decision::decide;
-use super::interval::{clamp_sum, empirical_bernstein, wilson, Interval};
+use super::experiment::ExperimentSpec;
+use super::interval::{clamp_sum, empirical_bernstein, wilson, Interval, LEVEL};
 use super::reward::RewardModel;
+use super::sequence::{confidence_sequence, per_arm_alpha};
 use super::stats::{reference_ms, ArmStats, HalfLife};
+
+/// An arm's mean minus the control arm's, with an anytime-valid interval: the difference of
+/// the two arms' confidence sequences, so it holds whenever they both do.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize)]
+pub struct Lift {
+    pub estimate: f64,
+    pub low: f64,
+    pub high: f64,
+}
 
 /// What is reported of one arm.
 #[derive(Clone, Debug, PartialEq, Serialize)]
@@ -20,15 +32,23 @@ pub struct ArmReport {
     pub reward: f64,
     /// Estimated mean reward (discounted when decay is on), in reward units.
     pub mean: f64,
+    /// The fixed-time 95 % interval (Wilson, or empirical Bernstein for bounded rewards): valid
+    /// for one look planned in advance, not for a dashboard watched every minute.
     pub ci_low: f64,
     pub ci_high: f64,
-    /// The interval overlaps the leader's: the data cannot yet rule this arm out.
+    /// The anytime-valid confidence sequence (`core::sequence`), 95 % for all arms of the
+    /// experiment together: valid at every look.
+    pub cs_low: f64,
+    pub cs_high: f64,
+    /// The arm's sequence still reaches the leader's: the data cannot yet rule this arm out.
     pub undecided: bool,
     pub last_pull_ms: Option<i64>,
     /// Rewards beyond the pulls under a 0/1 model, left out of the policy's success count.
     pub excess_rewards: f64,
     /// Posterior probability that this arm is the best (`core::decision`), for every policy.
     pub best_probability: f64,
+    /// Against the control arm, for the other arms of an experiment that names one.
+    pub lift: Option<Lift>,
 }
 
 impl ArmReport {
@@ -59,6 +79,15 @@ pub struct Report {
     /// Expected shortfall per impression, in reward units, of sending everything to the
     /// leader, under the posterior (`core::decision`).
     pub expected_loss: f64,
+    /// The settle rule (`core::decision::Settle`) is met.
+    pub settled: bool,
+}
+
+/// What the figures are judged against beyond the statistics: the control arm's index and the
+/// arms a definition took out (which need no more pulls to settle).
+pub struct Judged<'a> {
+    pub control: Option<usize>,
+    pub removed: &'a [bool],
 }
 
 /// Mean and interval of one arm in reward units, its sums discounted to `reference_ms` (see
@@ -75,14 +104,22 @@ pub fn estimate(stats: &ArmStats, model: RewardModel, reference_ms: i64, half_li
     (mean, ci)
 }
 
-/// Builds the report of arms with `stats` at `now_ms`, every arm discounted to one reference
-/// time.
-pub fn report(stats: &[ArmStats], model: RewardModel, now_ms: i64, half_life: HalfLife) -> Report {
+/// Builds the report of arms with `stats`, run as `spec`, at `now_ms`, every arm discounted to
+/// one reference time.
+pub fn report(stats: &[ArmStats], spec: &ExperimentSpec, judged: &Judged, now_ms: i64) -> Report {
+    let (model, half_life) = (spec.reward, spec.half_life_ms);
+    let max = model.max();
     let reference = reference_ms(stats, now_ms);
+    let alpha = per_arm_alpha(1.0 - LEVEL, stats.len());
+    let mut sums = Vec::with_capacity(stats.len());
     let mut arms: Vec<ArmReport> = stats
         .iter()
         .map(|s| {
             let (mean, ci) = estimate(s, model, reference, half_life);
+            let (n, sum, _) = s.at(reference, half_life);
+            let sum = clamp_sum(n, sum, max);
+            sums.push((n, sum));
+            let cs = confidence_sequence(sum / max, n, alpha);
             ArmReport {
                 pulls: s.pulls_total,
                 pending_pulls: s.pending.pulls(),
@@ -90,10 +127,13 @@ pub fn report(stats: &[ArmStats], model: RewardModel, now_ms: i64, half_life: Ha
                 mean,
                 ci_low: ci.low,
                 ci_high: ci.high,
+                cs_low: cs.low * max,
+                cs_high: cs.high * max,
                 undecided: false,
                 last_pull_ms: s.last_pull_ms,
                 excess_rewards: if model.is_binary() { s.excess_rewards() } else { 0.0 },
                 best_probability: 0.0,
+                lift: None,
             }
         })
         .collect();
@@ -105,15 +145,15 @@ pub fn report(stats: &[ArmStats], model: RewardModel, now_ms: i64, half_life: Ha
     }
     let mut regret = 0.0;
     if let Some(l) = leader {
-        let floor = arms[l].ci_low;
+        let floor = arms[l].cs_low;
         for (j, a) in arms.iter_mut().enumerate() {
-            a.undecided = j != l && a.ci_high >= floor;
+            a.undecided = j != l && a.cs_high >= floor;
         }
         let all_time: Vec<Option<f64>> = stats
             .iter()
             .map(|s| {
                 let n = s.matured_pulls() as f64;
-                (n > 0.0).then(|| clamp_sum(n, s.matured_reward(), model.max()) / n)
+                (n > 0.0).then(|| clamp_sum(n, s.matured_reward(), max) / n)
             })
             .collect();
         let best = all_time.iter().flatten().copied().fold(f64::NEG_INFINITY, f64::max);
@@ -123,18 +163,24 @@ pub fn report(stats: &[ArmStats], model: RewardModel, now_ms: i64, half_life: Ha
             }
         }
     }
-    let sums: Vec<(f64, f64)> = stats
-        .iter()
-        .map(|s| {
-            let (n, sum, _) = s.at(reference, half_life);
-            (n, clamp_sum(n, sum, model.max()))
-        })
-        .collect();
-    let decision = decide(&sums, model.max(), leader);
+    if let Some(c) = judged.control.filter(|&c| c < arms.len()) {
+        let (mean, low, high) = (arms[c].mean, arms[c].cs_low, arms[c].cs_high);
+        for (j, a) in arms.iter_mut().enumerate() {
+            if j != c {
+                a.lift = Some(Lift { estimate: a.mean - mean, low: a.cs_low - high, high: a.cs_high - low });
+            }
+        }
+    }
+    let decision = decide(&sums, max, leader);
     for (a, p) in arms.iter_mut().zip(decision.best_probability) {
         a.best_probability = p;
     }
-    Report { arms, leader, regret_estimate: regret, expected_loss: decision.expected_loss }
+    let removed = |j: usize| judged.removed.get(j).copied().unwrap_or(false);
+    let settled = leader.is_some_and(|l| {
+        let fewest = (0..arms.len()).filter(|&j| !removed(j)).map(|j| arms[j].matured_pulls()).min().unwrap_or(0);
+        !removed(l) && spec.settle.is_met(arms[l].best_probability, arms[l].mean, decision.expected_loss, fewest)
+    });
+    Report { arms, leader, regret_estimate: regret, expected_loss: decision.expected_loss, settled }
 }
 
 /// 1 − the leader's weight: the share of traffic still spent away from the current best.

@@ -234,31 +234,40 @@ fn unit(experiment: &str) -> &'static str {
     WORLD.iter().find(|t| t.experiment == experiment).map_or("reward units", |t| t.unit)
 }
 
-/// The live table: experiment, arm, pulls (and those pending), mean and interval, weight,
-/// regret estimate.
+/// The live table: experiment, arm, pulls (and those pending), mean and confidence sequence,
+/// probability of best, weight; per experiment whether it is settled and the expected loss of
+/// choosing its leader now.
 fn render(served: &Served, elapsed: Duration, produced: u64) -> String {
     let mut s = format!("Simmer · {:>4}s · {produced} events produced\n\n", elapsed.as_secs());
-    s += &format!("{:<14} {:<15} {:>8} {:>8} {:>26} {:>8}\n", "experiment", "arm", "pulls", "pending", "mean [95% interval]", "weight");
+    s += &format!(
+        "{:<13} {:<15} {:>7} {:>7} {:>26} {:>7} {:>6} {:>7} {:>9}\n",
+        "experiment", "arm", "pulls", "pending", "mean [95% sequence]", "P(best)", "weight", "settled", "exp. loss"
+    );
     for (id, e) in rows(served) {
         for (i, a) in e.arms.iter().enumerate() {
             let lead = if e.leader == Some(i) { "*" } else { " " };
+            let (settled, loss) = if i == 0 { (if e.settled { "yes" } else { "no" }, if e.expected_loss < 5e-6 { "<0.00001".into() } else { format!("{:.5}", e.expected_loss) }) } else { ("", String::new()) };
             s += &format!(
-                "{:<14} {lead}{:<14} {:>8} {:>8} {:>26} {:>8}\n",
+                "{:<13} {lead}{:<14} {:>7} {:>7} {:>26} {:>7.3} {:>6} {:>7} {:>9}\n",
                 if i == 0 { id.as_str() } else { "" },
                 a.name,
                 a.figures.pulls,
                 a.figures.pending_pulls,
-                format!("{:.4} [{:.4}, {:.4}]", a.figures.mean, a.figures.ci_low, a.figures.ci_high),
+                format!("{:.4} [{:.4}, {:.4}]", a.figures.mean, a.figures.cs_low, a.figures.cs_high),
+                a.figures.best_probability,
                 a.weight.map_or("-".into(), |w| format!("{:.3}", w)),
+                settled,
+                loss,
             );
         }
         let unit = unit(&id);
         s += &format!(
-            "{:<14} means in {unit} per impression; policy {}, weights version {}, regret estimate {:.1} {unit}\n\n",
+            "{:<13} means and expected loss in {unit} per impression; policy {}, weights version {}, regret estimate {:.1} {unit}\n\n",
             "", e.policy, e.version, e.regret_estimate
         );
     }
     s += "* leader (highest estimated mean) · pending: impressions younger than the attribution window, not yet in the mean\n";
+    s += "sequence: holds at every refresh, for all arms together · settled: P(best) and expected loss meet the experiment's settle rule\n";
     s
 }
 

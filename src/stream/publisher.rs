@@ -16,15 +16,17 @@ use crate::core::report::{ArmReport, Report};
 use crate::core::{Allocation, Experiment, State};
 use crate::telemetry::http::Served;
 use crate::telemetry::table::{ArmRow, ExperimentRow};
-/// What the weights message carries of an arm's figures: the contract's five fields, and the
-/// split of the pulls into matured and pending under an attribution window.
+/// What the weights message carries of an arm's figures: the contract's five fields, the
+/// split of the pulls into matured and pending under an attribution window, and the decision
+/// figures (probability of best, the confidence sequence, the lift over the control arm when
+/// the experiment has one).
 pub struct ArmSummary<'a>(&'a ArmReport);
 
 impl Serialize for ArmSummary<'_> {
     fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
         use serde::ser::SerializeMap;
         let a = self.0;
-        let mut m = s.serialize_map(Some(8))?;
+        let mut m = s.serialize_map(Some(11 + 3 * usize::from(a.lift.is_some())))?;
         m.serialize_entry("pulls", &a.pulls)?;
         m.serialize_entry("matured_pulls", &a.matured_pulls())?;
         m.serialize_entry("pending_pulls", &a.pending_pulls)?;
@@ -32,7 +34,15 @@ impl Serialize for ArmSummary<'_> {
         m.serialize_entry("mean", &a.mean)?;
         m.serialize_entry("ci_low", &a.ci_low)?;
         m.serialize_entry("ci_high", &a.ci_high)?;
+        m.serialize_entry("cs_low", &a.cs_low)?;
+        m.serialize_entry("cs_high", &a.cs_high)?;
+        m.serialize_entry("undecided", &a.undecided)?;
         m.serialize_entry("best_probability", &a.best_probability)?;
+        if let Some(l) = &a.lift {
+            m.serialize_entry("lift", &l.estimate)?;
+            m.serialize_entry("lift_low", &l.low)?;
+            m.serialize_entry("lift_high", &l.high)?;
+        }
         m.end()
     }
 }
@@ -52,6 +62,8 @@ pub struct WeightsMessage<'a> {
     pub arms: BTreeMap<&'a str, ArmSummary<'a>>,
     pub regret_estimate: f64,
     pub expected_loss: f64,
+    /// The settle rule is met (README, "Is it done?").
+    pub settled: bool,
 }
 
 impl<'a> WeightsMessage<'a> {
@@ -72,6 +84,7 @@ impl<'a> WeightsMessage<'a> {
             arms: (0..names.len()).filter(active).map(|j| (names[j].as_str(), ArmSummary(&alloc.report.arms[j]))).collect(),
             regret_estimate: alloc.report.regret_estimate,
             expected_loss: alloc.report.expected_loss,
+            settled: alloc.report.settled,
         }
     }
 }
@@ -211,6 +224,7 @@ fn row(partition: i32, exp: &Experiment, report: &Report, published_ms: Option<i
         leader: report.leader,
         regret_estimate: report.regret_estimate,
         expected_loss: report.expected_loss,
+        settled: report.settled,
         exploration: published.then(|| crate::core::report::exploration_ratio(weights, report.leader)),
         published_ms,
         arms: exp

@@ -26,9 +26,14 @@ pub const ARM_LAST_PULL: &str = "apportion_arm_last_pull_timestamp_seconds";
 pub const ARM_EXCESS_REWARDS: &str = "apportion_arm_excess_rewards";
 pub const ARM_PENDING_PULLS: &str = "apportion_arm_pending_pulls";
 pub const ARM_BEST_PROBABILITY: &str = "apportion_arm_best_probability";
+pub const ARM_MEAN_LOWER: &str = "apportion_arm_mean_lower";
+pub const ARM_MEAN_UPPER: &str = "apportion_arm_mean_upper";
+pub const ARM_LIFT_LOWER: &str = "apportion_arm_lift_lower";
+pub const ARM_LIFT_UPPER: &str = "apportion_arm_lift_upper";
 pub const EXPERIMENT_REGRET: &str = "apportion_experiment_regret_estimate";
 pub const EXPERIMENT_EXPLORATION: &str = "apportion_experiment_exploration_ratio";
 pub const EXPERIMENT_EXPECTED_LOSS: &str = "apportion_experiment_expected_loss";
+pub const EXPERIMENT_SETTLED: &str = "apportion_experiment_settled";
 pub const WEIGHTS_VERSION: &str = "apportion_weights_version";
 pub const WEIGHTS_PUBLISHED: &str = "apportion_weights_published_timestamp_seconds";
 pub const EXPERIMENT_STATE: &str = "apportion_experiment_state";
@@ -39,7 +44,7 @@ pub const EXPERIMENT_STATE_SINCE: &str = "apportion_experiment_state_since_times
 pub const HISTOGRAMS: [&str; 1] = [PUBLISH_LATENCY];
 
 /// Every family, instance-wide ones first.
-pub const ALL: [&str; 30] = [
+pub const ALL: [&str; 35] = [
     EVENTS,
     DEAD_LETTERS,
     EXPERIMENT_SPLIT,
@@ -62,9 +67,14 @@ pub const ALL: [&str; 30] = [
     ARM_EXCESS_REWARDS,
     ARM_PENDING_PULLS,
     ARM_BEST_PROBABILITY,
+    ARM_MEAN_LOWER,
+    ARM_MEAN_UPPER,
+    ARM_LIFT_LOWER,
+    ARM_LIFT_UPPER,
     EXPERIMENT_REGRET,
     EXPERIMENT_EXPLORATION,
     EXPERIMENT_EXPECTED_LOSS,
+    EXPERIMENT_SETTLED,
     WEIGHTS_VERSION,
     WEIGHTS_PUBLISHED,
     EXPERIMENT_STATE,

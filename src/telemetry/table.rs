@@ -40,6 +40,8 @@ pub struct ExperimentRow {
     pub regret_estimate: f64,
     /// Expected loss per impression of sending everything to the leader (`core::decision`).
     pub expected_loss: f64,
+    /// The settle rule is met.
+    pub settled: bool,
     /// 1 − the leader's weight, from the last publish.
     pub exploration: Option<f64>,
     pub published_ms: Option<i64>,
@@ -56,7 +58,7 @@ type ArmValue = fn(&ArmRow) -> Option<f64>;
 type ExperimentValue = fn(&ExperimentRow) -> Option<f64>;
 
 /// Per-arm families: name, type, help, value (None: no sample).
-const ARM_FAMILIES: [(&str, &str, &str, ArmValue); 10] = [
+const ARM_FAMILIES: [(&str, &str, &str, ArmValue); 14] = [
     (names::ARM_PULLS, "counter", "Impressions applied to the arm", |a| Some(a.figures.pulls as f64)),
     (names::ARM_REWARD, "counter", "Reward applied to the arm, in reward units", |a| Some(a.figures.reward)),
     (names::ARM_MEAN, "gauge", "Estimated mean reward of the arm", |a| Some(a.figures.mean)),
@@ -70,7 +72,7 @@ const ARM_FAMILIES: [(&str, &str, &str, ArmValue); 10] = [
     (
         names::ARM_UNDECIDED,
         "gauge",
-        "1 when the arm's interval still reaches the leader's lower bound",
+        "1 when the arm's confidence sequence still reaches the leader's lower end",
         |a| Some(if a.figures.undecided { 1.0 } else { 0.0 }),
     ),
     (
@@ -97,6 +99,30 @@ const ARM_FAMILIES: [(&str, &str, &str, ArmValue); 10] = [
         "Posterior probability that the arm is the best (uniform prior), whatever the policy",
         |a| Some(a.figures.best_probability),
     ),
+    (
+        names::ARM_MEAN_LOWER,
+        "gauge",
+        "Lower end of the anytime-valid 95% confidence sequence on the arm's mean (all arms together)",
+        |a| Some(a.figures.cs_low),
+    ),
+    (
+        names::ARM_MEAN_UPPER,
+        "gauge",
+        "Upper end of the anytime-valid 95% confidence sequence on the arm's mean (all arms together)",
+        |a| Some(a.figures.cs_high),
+    ),
+    (
+        names::ARM_LIFT_LOWER,
+        "gauge",
+        "Lower end of the anytime-valid interval on the arm's mean minus the control arm's",
+        |a| a.figures.lift.map(|l| l.low),
+    ),
+    (
+        names::ARM_LIFT_UPPER,
+        "gauge",
+        "Upper end of the anytime-valid interval on the arm's mean minus the control arm's",
+        |a| a.figures.lift.map(|l| l.high),
+    ),
 ];
 
 /// How many families [`Table::write_family`] writes.
@@ -104,7 +130,7 @@ pub const FAMILIES: usize = ARM_FAMILIES.len() + EXPERIMENT_FAMILIES.len();
 
 /// Per-experiment families. The state family carries the state as a label, with value 1
 /// ([`Table::write_family`] adds it).
-const EXPERIMENT_FAMILIES: [(&str, &str, &str, ExperimentValue); 8] = [
+const EXPERIMENT_FAMILIES: [(&str, &str, &str, ExperimentValue); 9] = [
     (
         names::EXPERIMENT_REGRET,
         "gauge",
@@ -117,6 +143,12 @@ const EXPERIMENT_FAMILIES: [(&str, &str, &str, ExperimentValue); 8] = [
         "gauge",
         "Expected shortfall per impression, in reward units, of sending everything to the leader, under the posterior",
         |e| Some(e.expected_loss),
+    ),
+    (
+        names::EXPERIMENT_SETTLED,
+        "gauge",
+        "1 when the settle rule is met: the leader is probably best and choosing it costs little",
+        |e| Some(if e.settled { 1.0 } else { 0.0 }),
     ),
     (
         names::WEIGHTS_VERSION,
@@ -269,6 +301,7 @@ impl Serialize for ExperimentRow {
             leader: Option<&'a str>,
             regret_estimate: f64,
             expected_loss: f64,
+            settled: bool,
             arms: Arms<'a>,
         }
         let l = &self.lifecycle;
@@ -284,6 +317,7 @@ impl Serialize for ExperimentRow {
             leader: self.leader.and_then(|l| self.arms.get(l)).map(|a| a.name.as_str()),
             regret_estimate: self.regret_estimate,
             expected_loss: self.expected_loss,
+            settled: self.settled,
             arms: Arms(&self.arms),
         }
         .serialize(s)
@@ -295,7 +329,7 @@ struct ArmJson<'a>(&'a ArmRow);
 impl Serialize for ArmJson<'_> {
     fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
         let (a, f) = (self.0, &self.0.figures);
-        let mut m = s.serialize_map(Some(12))?;
+        let mut m = s.serialize_map(Some(14 + 3 * usize::from(f.lift.is_some())))?;
         m.serialize_entry("pulls", &f.pulls)?;
         m.serialize_entry("matured_pulls", &f.matured_pulls())?;
         m.serialize_entry("pending_pulls", &f.pending_pulls)?;
@@ -303,6 +337,13 @@ impl Serialize for ArmJson<'_> {
         m.serialize_entry("mean", &f.mean)?;
         m.serialize_entry("ci_low", &f.ci_low)?;
         m.serialize_entry("ci_high", &f.ci_high)?;
+        m.serialize_entry("cs_low", &f.cs_low)?;
+        m.serialize_entry("cs_high", &f.cs_high)?;
+        if let Some(l) = &f.lift {
+            m.serialize_entry("lift", &l.estimate)?;
+            m.serialize_entry("lift_low", &l.low)?;
+            m.serialize_entry("lift_high", &l.high)?;
+        }
         m.serialize_entry("weight", &a.weight)?;
         m.serialize_entry("undecided", &f.undecided)?;
         m.serialize_entry("best_probability", &f.best_probability)?;
@@ -339,7 +380,10 @@ mod tests {
                 mean: 0.25,
                 ci_low: 0.1,
                 ci_high: 0.4,
+                cs_low: 0.05,
+                cs_high: 0.5,
                 undecided: true,
+                lift: None,
                 last_pull_ms: Some(1_764_547_200_500),
                 excess_rewards: 0.0,
             },
@@ -357,6 +401,7 @@ mod tests {
                 leader: Some(1),
                 regret_estimate: 1.5,
                 expected_loss: 0.01,
+                settled: false,
                 exploration: Some(0.4),
                 published_ms: Some(1_764_547_201_000),
                 arms: vec![arm("x", 12, Some(0.4)), arm("y\\z", 8, None)],
