@@ -371,3 +371,52 @@ fn an_experiment_created_on_first_sight_retires_when_idle_and_a_declared_one_doe
     assert_eq!(e["kept"]["state"], "learning", "a declared experiment is not retired for being idle");
     assert!(sidecar.stop());
 }
+
+#[test]
+fn a_settled_experiment_concludes_itself_through_exactly_one_control_record_when_asked_to() {
+    if no_broker() {
+        return;
+    }
+    let _one = exclusive();
+    // Two experiments with the same clear winner (b: 1 reward in 2 impressions, a: 1 in 10);
+    // only "clear" may conclude itself.
+    let (cfg, mut sidecar) = one_sidecar(
+        "settle",
+        "\n[[experiments]]\nid = \"clear\"\narms = [\"a\", \"b\"]\ncontrol_arm = \"a\"\nsettle = { min_pulls = 300, auto_conclude = true }\n\
+         \n[[experiments]]\nid = \"asked\"\narms = [\"a\", \"b\"]\nsettle = { min_pulls = 300 }\n",
+    );
+    let (events, weights) = (cfg.topic("events"), cfg.topic("weights"));
+    let settled = |s: &SidecarProcess, e: &str| metric(&s.get("/metrics").1, "apportion_experiment_settled", &[("experiment", e)]);
+    for e in ["clear", "asked"] {
+        produce(&events, &traffic(&format!("{e}-0"), e, &["a", "b"], 50, &[10, 2]));
+        wait_for_weights(&weights, e, Duration::from_secs(30), |v| v["arms"]["b"]["pulls"] == 50);
+    }
+    assert!(wait_until(Duration::from_secs(10), || settled(&sidecar, "clear") == Some(0.0)), "fewer than min_pulls: not settled");
+    let early = wait_for_weights(&weights, "clear", Duration::from_secs(10), |v| v["arms"]["b"]["pulls"] == 50);
+    assert_eq!(early["settled"], false, "{early}");
+    assert!(early["arms"]["b"]["lift_low"].as_f64().is_some() && early["arms"]["a"].get("lift").is_none(), "lift over the control arm: {early}");
+    for e in ["clear", "asked"] {
+        produce(&events, &traffic(&format!("{e}-1"), e, &["a", "b"], 600, &[10, 2]));
+    }
+    let concluded = wait_for_weights(&weights, "clear", Duration::from_secs(60), |v| v["state"] == "concluded");
+    assert_eq!(concluded["weights"], serde_json::json!({"a": 0.0, "b": 1.0}), "{concluded}");
+    assert_eq!(concluded["revision"], 1);
+    assert_eq!(settled(&sidecar, "clear"), Some(1.0));
+    assert!(wait_until(Duration::from_secs(30), || settled(&sidecar, "asked") == Some(1.0)), "the other one settles too");
+    let asked = wait_for_weights(&weights, "asked", Duration::from_secs(10), |v| v["settled"] == true);
+    assert_eq!(asked["state"], "learning", "without auto_conclude a settled experiment keeps learning: {asked}");
+    // A few more rounds, then the control topic: one record, by apportion, for "clear" only.
+    std::thread::sleep(Duration::from_secs(2));
+    let records = read_whole_topic(&cfg.topic("control"), Duration::from_secs(30));
+    let defs: Vec<serde_json::Value> = records.iter().filter_map(|m| serde_json::from_slice(m.payload()?).ok()).collect();
+    assert_eq!(defs.len(), 1, "exactly one control record: {defs:?}");
+    let d = &defs[0];
+    assert_eq!((d["experiment"].as_str(), d["state"].as_str(), d["winner"].as_str()), (Some("clear"), Some("concluded"), Some("b")), "{d}");
+    assert_eq!((d["changed_by"].as_str(), d["revision"].as_u64()), (Some("apportion"), Some(1)), "{d}");
+    assert!(d["note"].as_str().is_some_and(|n| n.starts_with("settled: P(best) ")), "{d}");
+    assert_eq!(control_records(&sidecar, "applied"), 1.0);
+    let listed: serde_json::Value = serde_json::from_str(&sidecar.get("/experiments").1).expect("JSON");
+    assert_eq!(listed["clear"]["changed_by"], "apportion");
+    assert_eq!(listed["clear"]["settled"], true);
+    assert!(sidecar.stop());
+}

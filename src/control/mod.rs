@@ -10,6 +10,7 @@
 //! is the broker's authorisation, not the sidecar's.
 
 pub mod command;
+pub mod conclusion;
 pub mod definition;
 pub mod follower;
 pub mod listing;

@@ -34,11 +34,14 @@ pub struct Entry {
     /// A retired experiment's last message and tombstone went out (by this instance: a new
     /// owner sends them again, which readers take as the same news).
     pub(super) farewell_sent: bool,
+    /// The revision of the record this instance wrote to conclude the settled experiment
+    /// (`settle.auto_conclude`), so that it is written once.
+    pub(super) conclusion_sent: Option<u64>,
 }
 
 impl Entry {
     pub fn new(exp: Experiment) -> Entry {
-        Entry { exp, impressions_since: 0, changed: true, first_applied: None, last_published: None, redefined: false, farewell_sent: false }
+        Entry { exp, impressions_since: 0, changed: true, first_applied: None, last_published: None, redefined: false, farewell_sent: false, conclusion_sent: None }
     }
 }
 

@@ -8,11 +8,12 @@ use std::time::{Duration, Instant};
 use rdkafka::producer::BaseRecord;
 use serde::Serialize;
 
-use super::partition::{Holdings, PartitionState};
+use super::partition::{Entry, Holdings, PartitionState};
 use super::producer::{send_with_retry, Sink};
 use super::settings::Settings;
 use crate::clock::now_ms;
 use crate::core::report::{ArmReport, Report};
+use crate::control::conclusion::conclusion;
 use crate::core::{Allocation, Experiment, State};
 use crate::telemetry::http::Served;
 use crate::telemetry::table::{ArmRow, ExperimentRow};
@@ -189,6 +190,7 @@ impl Publisher {
                 };
                 e.changed = false;
                 e.redefined = false;
+                self.conclude_if_settled(id, e, &report, now);
                 if !e.farewell_sent {
                     updates.push((id.clone(), row(partition, &e.exp, &report, publish.then_some(now))));
                 }
@@ -208,6 +210,29 @@ impl Publisher {
                 r.published_ms = table.rows.get(&id).and_then(|old| old.published_ms);
             }
             table.rows.insert(id, r);
+        }
+    }
+}
+
+impl Publisher {
+    /// Under `settle.auto_conclude`, writes the control record that concludes a settled,
+    /// learning experiment on its leader, once per revision in force; the experiment concludes
+    /// when the record is read back, like any other change.
+    fn conclude_if_settled(&self, id: &str, e: &mut Entry, report: &Report, now: i64) {
+        let exp = &e.exp;
+        let revision = exp.lifecycle().revision;
+        if !(report.settled && exp.spec().settle.auto_conclude && exp.lifecycle().state == State::Learning) || e.conclusion_sent == Some(revision) {
+            return;
+        }
+        let in_force = self.s.control.get(id);
+        let Some(def) = conclusion(id, exp, report, in_force.as_ref().map(|c| &c.definition), self.s.declared_as_written.get(id), now) else { return };
+        match serde_json::to_vec(&def) {
+            Ok(bytes) => {
+                send_with_retry(&self.sink, BaseRecord::to(&self.s.control_topic).key(id.as_bytes()).payload(&bytes[..]));
+                tracing::info!(experiment = %id, revision = def.revision, winner = def.winner.as_deref().unwrap_or("-"), "settled: concluding on the leader (settle.auto_conclude)");
+                e.conclusion_sent = Some(revision);
+            }
+            Err(err) => tracing::error!(experiment = %id, "cannot encode the concluding record: {err}"),
         }
     }
 }

@@ -4,7 +4,7 @@ use std::collections::HashMap;
 use std::sync::Arc;
 use std::time::Duration;
 
-use crate::config::{Config, ResolvedExperiment};
+use crate::config::{Config, ExperimentConfig, ResolvedExperiment};
 use crate::control::Registry;
 use crate::core::{ExperimentSpec, Lifecycle};
 
@@ -21,11 +21,15 @@ pub struct Defined {
 pub struct Settings {
     pub input_topic: String,
     pub weights_topic: String,
+    pub control_topic: String,
     pub state_topic: String,
     pub dead_letter_topic: String,
     /// How experiments seen for the first time are run; `None` when they must be declared.
     pub default_spec: Option<ExperimentSpec>,
     pub declared: HashMap<String, ResolvedExperiment>,
+    /// The same experiments as the file declares them (what a record concluding one starts
+    /// from, `control::conclusion`).
+    pub declared_as_written: HashMap<String, ExperimentConfig>,
     /// Definitions from the control topic; they override `declared`.
     pub control: Arc<Registry>,
     /// Experiments created on first sight retire after this long without an impression, ms.
@@ -50,10 +54,12 @@ impl Settings {
         Ok(Settings {
             input_topic: cfg.kafka.input_topic.clone(),
             weights_topic: cfg.kafka.weights_topic.clone(),
+            control_topic: cfg.kafka.control_topic.clone(),
             state_topic: cfg.kafka.state_topic.clone(),
             dead_letter_topic: cfg.kafka.dead_letter_topic.clone(),
             default_spec,
             declared: cfg.resolved().into_iter().map(|r| (r.id.clone(), r)).collect(),
+            declared_as_written: cfg.experiments.iter().map(|e| (e.id.clone(), e.clone())).collect(),
             control,
             idle_retire_ms: cfg.defaults.idle_retire_seconds.map(|s| (s * 1000.0) as i64),
             retire_grace_ms: (cfg.defaults.retire_grace_seconds * 1000.0) as i64,
