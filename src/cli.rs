@@ -13,6 +13,7 @@ use crate::config::{self, Config, ConfigError, ResolvedExperiment, Source};
 use crate::console::{self, Unwritable};
 use crate::core::{PolicySpec, RewardModel};
 use crate::telemetry::http::Served;
+use crate::core::decision::Settle;
 use crate::sim::{self, SimSpec};
 use crate::telemetry::Metrics;
 use crate::{say, sayln};
@@ -132,6 +133,21 @@ pub struct SimulateArgs {
     /// sidecar does with `attribution_window_seconds`.
     #[arg(long, value_name = "SECONDS")]
     pub attribution_window: Option<f64>,
+    /// Study the settle rule: when each run first counts as settled, and on which arm.
+    #[arg(long)]
+    pub settle: bool,
+    /// The rule's least probability of best for the leader (with --settle).
+    #[arg(long, value_name = "P", default_value_t = Settle::default().best_probability)]
+    pub settle_best_probability: f64,
+    /// The rule's largest expected loss, as a share of the leader's mean (with --settle).
+    #[arg(long, value_name = "SHARE", default_value_t = Settle::default().relative_loss)]
+    pub settle_relative_loss: f64,
+    /// The rule's least matured pulls on every arm (with --settle).
+    #[arg(long, value_name = "PULLS", default_value_t = Settle::default().min_pulls)]
+    pub settle_min_pulls: u64,
+    /// Pulls between looks at the rule, as a sidecar looks at each publish (with --settle).
+    #[arg(long, value_name = "PULLS", default_value_t = 100)]
+    pub settle_every: u64,
 }
 
 /// Runs the command line until done or until `signal` completes (the binary passes
@@ -343,6 +359,15 @@ fn simulate(args: SimulateArgs) -> ExitCode {
             delay: args.reward_delay.unwrap_or(sim::Delay::Fixed { seconds: 0.0 }),
             rate_per_second: args.rate,
             attribution_window_seconds: args.attribution_window,
+        }),
+        settle: args.settle.then(|| sim::settle::Study {
+            rule: Settle {
+                best_probability: args.settle_best_probability,
+                relative_loss: args.settle_relative_loss,
+                min_pulls: args.settle_min_pulls,
+                auto_conclude: false,
+            },
+            every: args.settle_every,
         }),
     };
     if let Err(e) = spec.validate().and_then(|()| args.plot.as_deref().map_or(Ok(()), sim::output::check_plot_path)) {

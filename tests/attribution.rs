@@ -22,6 +22,7 @@ fn spec(arms: &[f64], reward: RewardModel, policy: &str, horizon: u64, runs: u32
         seed: SEED,
         threads: 2,
         timing: Some(timing),
+        settle: None,
     }
 }
 

@@ -7,6 +7,7 @@
 //! `--seed` and r alone, so results do not depend on the number of threads.
 
 pub mod output;
+pub mod settle;
 
 use std::cmp::Reverse;
 use std::collections::BinaryHeap;
@@ -91,6 +92,8 @@ pub struct SimSpec {
     pub threads: usize,
     /// Rewards delayed in time; `None`: every reward comes with its impression.
     pub timing: Option<Timing>,
+    /// The settle rule to study; `None`: not studied.
+    pub settle: Option<settle::Study>,
 }
 
 impl SimSpec {
@@ -120,6 +123,12 @@ impl SimSpec {
                 if !(w.is_finite() && w >= 0.001) {
                     return Err(format!("--attribution-window {w}; it must be a number of seconds ≥ 0.001"));
                 }
+            }
+        }
+        if let Some(study) = &self.settle {
+            study.rule.validate().map_err(|e| e.replacen("settle.", "--settle-", 1).replacen("best_probability", "best-probability", 1).replacen("relative_loss", "relative-loss", 1))?;
+            if study.every == 0 {
+                return Err("--settle-every is 0; it must be at least 1 pull".into());
             }
         }
         Ok(())
@@ -195,6 +204,9 @@ pub struct PolicyResult {
     /// With delayed rewards: what the delay did to the estimates at the horizon.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub estimates: Option<Estimates>,
+    /// With a settle rule to study: when the runs settled, and on which arm.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub settle: Option<settle::Settled>,
 }
 
 /// The estimates at the horizon of a simulation with delayed rewards, over the runs.
@@ -219,6 +231,8 @@ pub struct SimReport {
     pub lai_robbins_constant: f64,
     #[serde(skip_serializing_if = "Option::is_none")]
     pub timing: Option<Timing>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub settle: Option<settle::Study>,
     pub results: Vec<PolicyResult>,
 }
 
@@ -233,6 +247,7 @@ struct RunOutcome {
     /// Rewards delivered by the horizon, and how many of them were late.
     delivered: u64,
     late: u64,
+    settling: Option<settle::Settling>,
 }
 
 /// Runs the simulation; `progress` is called with the number of finished runs.
@@ -303,6 +318,7 @@ pub fn simulate(spec: &SimSpec, progress: &(dyn Fn(u64) + Sync)) -> Result<SimRe
             final_estimate_mean: mean_stderr(outs.iter().map(|o| o.estimate)).0,
             mean_pulls,
             estimates: spec.timing.map(|_| estimates(spec.arms.len(), &outs)),
+            settle: spec.settle.as_ref().map(|_| settle::summarise(&outs.iter().map(|o| o.settling).collect::<Vec<_>>())),
         });
     }
     Ok(SimReport {
@@ -312,6 +328,7 @@ pub fn simulate(spec: &SimSpec, progress: &(dyn Fn(u64) + Sync)) -> Result<SimRe
         batch: spec.batch,
         lai_robbins_constant: spec.lai_robbins_constant(),
         timing: spec.timing,
+        settle: spec.settle.clone(),
         results,
     })
 }
@@ -376,7 +393,11 @@ fn one_run(spec: &SimSpec, policy: &PolicySpec, cps: &[u64], seed: u64, watch: &
         .timing
         .and_then(|t| t.attribution_window_seconds)
         .map(|w| Window { ms: (w * 1000.0).round() as i64 });
+    if let Some(study) = &spec.settle {
+        exp_spec.settle = study.rule.clone();
+    }
     let mut exp = Experiment::new(exp_spec, &names)?;
+    let mut settling = None;
     let mut rng = StdRng::seed_from_u64(seed);
     let best = spec.best();
     let max = spec.reward.max();
@@ -445,6 +466,9 @@ fn one_run(spec: &SimSpec, policy: &PolicySpec, cps: &[u64], seed: u64, watch: &
             }
         }
         total += best - mean;
+        if let (Some(study), None) = (&spec.settle, settling) {
+            settling = settle::check(study, &mut exp, t + 1, now, &spec.arms, total);
+        }
         if t + 1 == cps[next_cp] {
             regret.push(total);
             exp.mature();
@@ -471,5 +495,6 @@ fn one_run(spec: &SimSpec, policy: &PolicySpec, cps: &[u64], seed: u64, watch: &
         pending: report.arms.iter().map(|a| a.pending_pulls).sum(),
         delivered,
         late,
+        settling,
     })
 }

@@ -46,7 +46,48 @@ pub fn table(report: &SimReport) -> String {
     if let Some(t) = &report.timing {
         timing(&mut s, report, t);
     }
+    if let Some(study) = &report.settle {
+        settling(&mut s, report, study);
+    }
     s
+}
+
+/// The settle study: per policy, the share of runs that settled, the time to settle, the share
+/// that settled on a wrong arm, and the regret by then.
+fn settling(s: &mut String, report: &SimReport, study: &super::settle::Study) {
+    let r = &study.rule;
+    let _ = writeln!(
+        s,
+        "\nsettle rule: P(best) ≥ {} for the leader, expected loss ≤ {}% of its mean, ≥ {} matured pulls on every arm; looked at every {} pulls",
+        r.best_probability,
+        100.0 * r.relative_loss,
+        r.min_pulls,
+        study.every
+    );
+    let width = report.results.iter().map(|r| r.policy.len()).max().unwrap_or(6).max(6);
+    let _ = writeln!(
+        s,
+        "{:<width$}  {:>8}  {:>12}  {:>12}  {:>10}  {:>20}",
+        "policy", "settled", "median pulls", "p90 pulls", "wrong arm", "regret at settling"
+    );
+    let pulls = |p: Option<u64>| p.map_or(format!("> {}", report.horizon), |p| p.to_string());
+    for res in &report.results {
+        let Some(f) = &res.settle else { continue };
+        let _ = writeln!(
+            s,
+            "{:<width$}  {:>7.1}%  {:>12}  {:>12}  {:>9.2}%  {:>20}",
+            res.policy,
+            100.0 * f.settled_share,
+            pulls(f.pulls_median),
+            pulls(f.pulls_p90),
+            100.0 * f.wrong_share,
+            format!("{:.1} ± {:.1}", f.regret_at_settle_mean, f.regret_at_settle_stderr),
+        );
+    }
+    s.push_str(
+        "settled: share of runs that met the rule by the horizon · pulls: until first met, over all runs (nearest rank)\n\
+         wrong arm: share of all runs that settled on an arm with a lower true mean than the best · regret: over the runs that settled\n",
+    );
 }
 
 /// What the delay did to the estimates: the mean error of each arm's reported mean at the
@@ -161,6 +202,15 @@ pub fn plot(report: &SimReport, path: &Path) -> Result<(), String> {
             .label(r.policy.clone())
             .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], colour.stroke_width(2)));
     }
+    for (i, r) in report.results.iter().enumerate() {
+        let Some(t) = r.settle.as_ref().and_then(|f| f.pulls_median) else { continue };
+        let colour = Palette99::pick(i).to_rgba();
+        chart
+            .draw_series(DashedLineSeries::new([(t as f64, 0.0), (t as f64, top)], 3, 3, colour.stroke_width(1)))
+            .map_err(|e| fail(&e))?
+            .label(format!("{}: median time to settle, {} pulls", r.policy, tick(&(t as f64))))
+            .legend(move |(x, y)| PathElement::new(vec![(x + 9, y - 6), (x + 9, y + 6)], colour.stroke_width(1)));
+    }
     let steps = 200;
     let lr: Vec<(f64, f64)> = (0..=steps)
         .map(|i| {
@@ -201,6 +251,7 @@ mod tests {
             seed: 3,
             threads: 1,
             timing: None,
+            settle: None,
         };
         simulate(&spec, &|_| {}).unwrap()
     }
