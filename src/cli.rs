@@ -360,7 +360,7 @@ fn simulate(args: SimulateArgs) -> ExitCode {
             rate_per_second: args.rate,
             attribution_window_seconds: args.attribution_window,
         }),
-        settle: args.settle.then(|| sim::settle::Study {
+        settle: args.settle.then_some(sim::settle::Study {
             rule: Settle {
                 best_probability: args.settle_best_probability,
                 relative_loss: args.settle_relative_loss,

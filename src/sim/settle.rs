@@ -50,7 +50,7 @@ pub struct Settled {
 /// Checks the rule on `exp` after `pulls` pulls at `now_ms`, when it is due: the settling, if
 /// the rule is met now. `arms` are the true means; `regret` the pseudo-regret so far.
 pub fn check(study: &Study, exp: &mut Experiment, pulls: u64, now_ms: i64, arms: &[f64], regret: f64) -> Option<Settling> {
-    if pulls % study.every != 0 {
+    if !pulls.is_multiple_of(study.every) {
         return None;
     }
     exp.mature();
