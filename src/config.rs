@@ -658,6 +658,14 @@ impl fmt::Display for ResolvedExperiment {
         if let Some(w) = self.spec.attribution {
             write!(f, ", attribution window {}s", w.ms as f64 / 1000.0)?;
         }
+        if let Some(c) = &self.spec.control_arm {
+            write!(f, ", lift over {c}")?;
+        }
+        let t = &self.spec.settle;
+        write!(f, ", settled at P(best) {} and loss {}·mean after {} pulls per arm", t.best_probability, t.relative_loss, t.min_pulls)?;
+        if t.auto_conclude {
+            write!(f, " (then concludes itself)")?;
+        }
         if !self.spec.accept_new_arms {
             write!(f, ", no new arms")?;
         }

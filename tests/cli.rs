@@ -52,6 +52,10 @@ fn each_configuration_error_exits_2_naming_the_key() {
         ("[[experiments]]\nid = \"x\"\nattribution_window_seconds = -5\n", "attribution_window_seconds = -5"),
         ("[[experiments]]\nid = \"x\"\nbounds = { flor = 0.1 }\n", "`experiments[0].bounds`"),
         ("[[experiments]]\nid = \"x\"\narms = [\"a\", \"a\"]\n", "experiments[0].arms"),
+        ("[defaults]\nsettle = { best_probability = 1.5 }\n", "settle.best_probability = 1.5"),
+        ("[defaults]\nsettle = { relative_loss = 0 }\n", "settle.relative_loss = 0"),
+        ("[[experiments]]\nid = \"x\"\nsettle = { min_pull = 3 }\n", "`experiments[0].settle`"),
+        ("[[experiments]]\nid = \"x\"\narms = [\"a\", \"b\"]\ncontrol_arm = \"c\"\n", "experiments[0].control_arm (x) = \"c\""),
         (
             "[[experiments]]\nid = \"x\"\narms = [\"a\", \"b\"]\npolicy = { name = \"fixed\", weights = { a = 0.5, zz = 0.5 } }\n",
             "experiments[0].policy.weights.zz",

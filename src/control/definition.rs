@@ -220,6 +220,10 @@ mod tests {
         assert_eq!(c.resolved.arms, ["warm", "cool", "mono"]);
         assert!(!c.resolved.spec.accept_new_arms);
         assert_eq!(c.resolved.spec.bounds.floor, 0.05);
+        assert_eq!(c.resolved.spec.control_arm.as_deref(), Some("warm"));
+        let settled = GOOD.replace("\"winner\":null", "\"winner\":null,\"settle\":{\"min_pulls\":50,\"auto_conclude\":true}");
+        let s = record(&settled).expect("valid").resolved.spec.settle;
+        assert_eq!((s.min_pulls, s.auto_conclude, s.best_probability), (50, true, 0.95), "keys left out take their defaults");
     }
 
     #[test]
@@ -231,6 +235,8 @@ mod tests {
             (GOOD.replace("\"learning\"", "\"concluded\"").replace("\"winner\":null", "\"winner\":\"gold\""), "winner = \"gold\" is not one of its arms"),
             (GOOD.replace("\"revision\":7", "\"revision\":0"), "revision = 0"),
             (GOOD.replace("\"note\"", "\"remark\""), "unknown field `remark`"),
+            (GOOD.replace("\"control_arm\":\"warm\"", "\"control_arm\":\"gold\""), "control_arm (thumb-style) = \"gold\" is not one of its arms"),
+            (GOOD.replace("\"winner\":null", "\"winner\":null,\"settle\":{\"best_probability\":0.4}"), "settle.best_probability = 0.4"),
             (GOOD.replace("\"cool\",", "\"warm\","), "declared twice"),
             ("[1,2]".to_string(), "not a definition"),
         ];
