@@ -1,28 +1,31 @@
-//! The demo's traffic: a stand-in for the services beside the sidecar. It reads the latest
-//! weights back from the weights topic, picks arms by sampling them, writes impressions, and
-//! writes rewards one to four seconds later, so the loop closes through Kafka as in production.
-//! Each reward names its impression by id, and every other one by time too, so that both ways
-//! of attributing a reward are exercised.
+//! The demo's traffic: a stand-in for the services beside the sidecar, written as a service
+//! would be, with the service client (`apportion-client`): it follows the weights topic, assigns
+//! each viewer to an arm by the client's sticky hash, writes the impression with the client's
+//! propensity and weights version, and the reward one to four seconds later, naming its
+//! impression, so the loop closes through Kafka as in production. Before the first weights, the
+//! client's fallback (an even split over the experiment's arms) answers.
 //! A small share of events is sent twice or malformed, to show duplicates and dead letters.
 
 use std::cmp::Reverse;
-use std::collections::{BinaryHeap, HashMap};
+use std::collections::BinaryHeap;
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
+use apportion_client::events::impression_json;
+use apportion_client::{Client, ClientConfig, Fallback, Impression};
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
 use rand_distr::{Beta, Distribution};
-use rdkafka::config::ClientConfig;
-use rdkafka::consumer::{BaseConsumer, Consumer};
-use rdkafka::message::Message;
+use rdkafka::config::ClientConfig as KafkaConfig;
 use rdkafka::producer::{BaseRecord, DefaultProducerContext, Producer, ThreadedProducer};
-use rdkafka::{Offset, TopicPartitionList};
 
 use super::scenario::{Truth, WORLD};
 use crate::clock::now_ms;
 use crate::core::draw::weighted;
+
+/// Simmer's viewers: each is one unit, and keeps its arm while the weights allow.
+const VIEWERS: u64 = 20_000;
 
 pub struct Traffic {
     pub brokers: String,
@@ -35,10 +38,12 @@ pub struct Traffic {
     pub produced: Arc<AtomicU64>,
 }
 
+/// A reward on its way: when it is due, for which impression, how much.
 struct Pending {
     due: Instant,
-    payload: String,
-    experiment: &'static str,
+    impression: Impression,
+    reward: f64,
+    ts_ms: i64,
 }
 
 impl PartialEq for Pending {
@@ -61,54 +66,37 @@ impl Ord for Pending {
 impl Traffic {
     /// Runs until `stop`; returns an error only when the clients cannot be created.
     pub fn run(self) -> anyhow::Result<()> {
-        let producer: ThreadedProducer<DefaultProducerContext> = ClientConfig::new()
-            .set("bootstrap.servers", &self.brokers)
-            .set("linger.ms", "20")
-            .create()?;
-        let reader: BaseConsumer = ClientConfig::new()
-            .set("bootstrap.servers", &self.brokers)
-            .set("group.id", "apportion-demo-traffic")
-            .set("enable.auto.commit", "false")
-            .create()?;
-        let mut assigned = false;
+        let mut cfg = ClientConfig::new(&self.brokers);
+        cfg.weights_topic = self.weights_topic.clone();
+        cfg.input_topic = self.input_topic.clone();
+        for t in WORLD {
+            cfg.fallbacks.insert(t.experiment.to_string(), Fallback::Even(t.arms.iter().map(|a| a.0.to_string()).collect()));
+        }
+        let client = Client::start(cfg)?;
+        // Only for the few events sent twice or broken on purpose.
+        let raw: ThreadedProducer<DefaultProducerContext> = KafkaConfig::new().set("bootstrap.servers", &self.brokers).create()?;
         let mut rng = StdRng::seed_from_u64(self.seed);
-        let mut weights: HashMap<String, (u64, HashMap<String, f64>)> = HashMap::new();
         let mut pending: BinaryHeap<Reverse<Pending>> = BinaryHeap::new();
-        let mut seq = 0u64;
         let start = Instant::now();
         let tick = Duration::from_millis(20);
         let mut sent_impressions = 0f64;
         while !self.stop.load(Ordering::SeqCst) {
-            if !assigned {
-                assigned = assign_all(&reader, &self.weights_topic);
-            }
-            while let Some(Ok(m)) = reader.poll(Duration::ZERO) {
-                if let Some(Ok((exp, version, w))) = m.payload().map(parse_weights) {
-                    if weights.get(&exp).is_none_or(|(v, _)| version > *v) {
-                        weights.insert(exp, (version, w));
-                    }
-                }
-            }
             let target = start.elapsed().as_secs_f64() * self.rate;
             while sent_impressions < target {
                 sent_impressions += 1.0;
-                seq += 1;
                 let truth = pick_experiment(&mut rng);
-                let arm = pick_arm(truth, weights.get(truth.experiment).map(|(_, w)| w), &mut rng);
-                let mean = truth.arms.iter().find(|a| a.0 == arm).map_or(0.0, |a| a.1);
+                let viewer = format!("viewer-{}", rng.gen_range(0..VIEWERS));
+                let Ok(a) = client.assign(truth.experiment, &viewer) else { continue };
                 let now = now_ms();
-                let version = weights.get(truth.experiment).map_or(0, |(v, _)| *v);
-                let imp = format!(
-                    r#"{{"event_id":"imp-{seq}","kind":"impression","experiment":"{}","arm":"{arm}","ts_ms":{now},"weights_version":{version}}}"#,
-                    truth.experiment
-                );
-                self.send(&producer, truth.experiment, &imp);
+                let Ok(shown) = client.impression(&a, Some(now)) else { continue };
+                self.produced.fetch_add(1, Ordering::Relaxed);
                 let roll: f64 = rng.gen();
                 if roll < 0.002 {
-                    self.send(&producer, truth.experiment, &imp);
+                    self.send(&raw, truth.experiment, &impression_json(&shown.event_id, &a, now));
                 } else if roll < 0.003 {
-                    self.send(&producer, truth.experiment, r#"{"event_id":"broken","kind":"impression""#);
+                    self.send(&raw, truth.experiment, r#"{"event_id":"broken","kind":"impression""#);
                 }
+                let mean = truth.arms.iter().find(|x| x.0 == &*a.arm).map_or(0.0, |x| x.1);
                 let reward = match truth.reward_max {
                     None => f64::from(u8::from(rng.gen::<f64>() < mean)),
                     Some(max) => {
@@ -118,26 +106,20 @@ impl Traffic {
                 };
                 if reward > 0.0 {
                     let delay = Duration::from_millis(rng.gen_range(1000..4000));
-                    let by_time = if seq.is_multiple_of(2) { format!(r#","impression_ts_ms":{now}"#) } else { String::new() };
-                    pending.push(Reverse(Pending {
-                        due: Instant::now() + delay,
-                        payload: format!(
-                            r#"{{"event_id":"rew-{seq}","kind":"reward","experiment":"{}","arm":"{arm}","ts_ms":{},"reward":{reward},"impression_id":"imp-{seq}"{by_time}}}"#,
-                            truth.experiment,
-                            now + delay.as_millis() as i64
-                        ),
-                        experiment: truth.experiment,
-                    }));
+                    pending.push(Reverse(Pending { due: Instant::now() + delay, ts_ms: now + delay.as_millis() as i64, impression: shown, reward }));
                 }
             }
             while pending.peek().is_some_and(|p| p.0.due <= Instant::now()) {
                 if let Some(Reverse(p)) = pending.pop() {
-                    self.send(&producer, p.experiment, &p.payload);
+                    if client.reward(&p.impression, p.reward, Some(p.ts_ms)).is_ok() {
+                        self.produced.fetch_add(1, Ordering::Relaxed);
+                    }
                 }
             }
             std::thread::sleep(tick);
         }
-        let _ = producer.flush(Duration::from_secs(5));
+        client.flush(Duration::from_secs(5));
+        let _ = raw.flush(Duration::from_secs(5));
         Ok(())
     }
 
@@ -158,40 +140,6 @@ impl Traffic {
     }
 }
 
-fn assign_all(reader: &BaseConsumer, topic: &str) -> bool {
-    let Ok(md) = reader.fetch_metadata(Some(topic), Duration::from_secs(2)) else {
-        return false;
-    };
-    let Some(t) = md.topics().iter().find(|t| t.name() == topic) else {
-        return false;
-    };
-    if t.partitions().is_empty() {
-        return false;
-    }
-    let mut tpl = TopicPartitionList::new();
-    for p in t.partitions() {
-        let _ = tpl.add_partition_offset(topic, p.id(), Offset::Beginning);
-    }
-    reader.assign(&tpl).is_ok()
-}
-
-fn parse_weights(bytes: &[u8]) -> Result<(String, u64, HashMap<String, f64>), serde_json::Error> {
-    #[derive(serde::Deserialize)]
-    struct W {
-        experiment: String,
-        version: u64,
-        weights: HashMap<String, f64>,
-    }
-    let w: W = serde_json::from_slice(bytes)?;
-    Ok((w.experiment, w.version, w.weights))
-}
-
 fn pick_experiment(rng: &mut StdRng) -> &'static Truth {
     &WORLD[weighted(WORLD.iter().map(|t| t.traffic), rng.gen()).unwrap_or(WORLD.len() - 1)]
-}
-
-/// Samples an arm from the published weights; uniformly before any weights arrive.
-fn pick_arm(t: &Truth, weights: Option<&HashMap<String, f64>>, rng: &mut StdRng) -> &'static str {
-    let drawn = weights.and_then(|w| weighted(t.arms.iter().map(|(arm, _)| w.get(*arm).copied().unwrap_or(0.0)), rng.gen()));
-    t.arms[drawn.unwrap_or_else(|| rng.gen_range(0..t.arms.len()))].0
 }
