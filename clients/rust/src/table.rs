@@ -40,13 +40,16 @@ pub enum Offered {
 
 #[derive(Deserialize)]
 struct Message {
+    experiment: String,
     version: u64,
-    #[serde(default)]
-    state: Option<String>,
-    #[serde(default)]
+    state: String,
     published_at_ms: i64,
+    #[serde(default)]
     weights: std::collections::BTreeMap<String, f64>,
 }
+
+/// The states a weights message may carry.
+const STATES: [&str; 4] = ["learning", "frozen", "concluded", "retired"];
 
 type Map = HashMap<Arc<str>, Arc<Held>, rustc_hash::FxBuildHasher>;
 
@@ -72,30 +75,47 @@ impl Table {
     }
 
     /// Takes one message (its key, and its value: `None` for a tombstone). Readers see the change
-    /// after the next [`Table::publish`].
+    /// after the next [`Table::publish`]. The rules are the Python client's (`table.py`), so the
+    /// two hold the same weights after the same messages: a message needs `experiment` (equal to
+    /// the key when there is one), `version`, a known `state` and `published_at_ms`; one that is
+    /// not retired needs weights, finite, not negative, and not all zero.
     pub fn offer(&self, key: Option<&[u8]>, value: Option<&[u8]>) -> Offered {
-        let Some(key) = key.and_then(|k| std::str::from_utf8(k).ok()) else { return Offered::Unreadable };
+        let key = match key.map(std::str::from_utf8) {
+            Some(Err(_)) => return Offered::Unreadable,
+            Some(Ok(k)) => Some(k),
+            None => None,
+        };
         let mut master = self.master.lock().unwrap_or_else(|p| p.into_inner());
-        let held = master.0.get(key).cloned();
         let Some(value) = value else {
-            let Some(h) = held else { return Offered::Retired };
-            master.0.insert(Arc::from(key), Arc::new(Held { retired: true, ..(*h).clone() }));
+            let Some(id) = key.filter(|k| !k.is_empty()) else { return Offered::Unreadable };
+            let retired = match master.0.get(id) {
+                Some(h) if h.retired && h.names.is_empty() => return Offered::Retired,
+                Some(h) => Held { retired: true, state: "retired".into(), names: Vec::new(), racers: Vec::new(), total: 0.0, ..(**h).clone() },
+                None => Held { version: 0, state: "retired".into(), published_at_ms: 0, names: Vec::new(), racers: Vec::new(), total: 0.0, retired: true },
+            };
+            master.0.insert(Arc::from(id), Arc::new(retired));
             master.1 = true;
             return Offered::Retired;
         };
         let Ok(m) = serde_json::from_slice::<Message>(value) else { return Offered::Unreadable };
-        if m.weights.values().any(|w| !(w.is_finite() && *w >= 0.0)) || !m.weights.values().any(|w| *w > 0.0) {
+        if m.experiment.is_empty() || key.is_some_and(|k| k != m.experiment) || !STATES.contains(&m.state.as_str()) {
             return Offered::Unreadable;
         }
-        if held.as_ref().is_some_and(|h| m.version <= h.version) {
+        let retired = m.state == "retired";
+        if !retired && (m.weights.values().any(|w| !(w.is_finite() && *w >= 0.0)) || !m.weights.values().any(|w| *w > 0.0)) {
+            return Offered::Unreadable;
+        }
+        if master.0.get(m.experiment.as_str()).is_some_and(|h| m.version <= h.version && !(h.version == 0 && h.names.is_empty())) {
             return Offered::IgnoredVersion;
         }
-        let state = m.state.unwrap_or_else(|| "learning".to_string());
-        let retired = state == "retired";
-        let (names, racers): (Vec<Arc<str>>, Vec<Racer>) =
-            m.weights.iter().map(|(a, &w)| (Arc::from(a.as_str()), Racer { seed: arm_seed(a), weight: w })).unzip();
+        let (names, racers): (Vec<Arc<str>>, Vec<Racer>) = if retired {
+            (Vec::new(), Vec::new())
+        } else {
+            m.weights.iter().map(|(a, &w)| (Arc::from(a.as_str()), Racer { seed: arm_seed(a), weight: w })).unzip()
+        };
         let total = racers.iter().map(|r| r.weight).filter(|w| *w > 0.0).sum();
-        master.0.insert(Arc::from(key), Arc::new(Held { version: m.version, state, published_at_ms: m.published_at_ms, names, racers, total, retired }));
+        let held = Held { version: m.version, state: m.state, published_at_ms: m.published_at_ms, names, racers, total, retired };
+        master.0.insert(Arc::from(m.experiment.as_str()), Arc::new(held));
         master.1 = true;
         if retired {
             Offered::Retired
@@ -142,12 +162,18 @@ mod tests {
         assert_eq!(t.offer(Some(b"e"), Some(&msg(2, "learning", r#"{"a":1.0}"#))), Offered::IgnoredVersion);
         assert_eq!(t.offer(Some(b"e"), Some(b"{")), Offered::Unreadable);
         assert_eq!(t.offer(Some(b"e"), Some(&msg(4, "learning", r#"{"a":-1.0,"b":2.0}"#))), Offered::Unreadable);
-        assert_eq!(t.offer(None, Some(&msg(4, "learning", r#"{"a":1.0}"#))), Offered::Unreadable);
+        assert_eq!(t.offer(Some(b"f"), Some(&msg(4, "learning", r#"{"a":1.0}"#))), Offered::Unreadable, "a key that is not its experiment");
+        assert_eq!(t.offer(Some(b"e"), Some(&msg(4, "paused", r#"{"a":1.0}"#))), Offered::Unreadable, "an unknown state");
         assert_eq!(t.offer(Some(b"e"), Some(&msg(5, "retired", r#"{"a":1.0}"#))), Offered::Retired);
         assert_eq!(t.offer(Some(b"e"), None), Offered::Retired);
         t.publish();
         let h = t.get("e").expect("still held, as retired");
         assert!(h.retired && h.version == 5, "{h:?}");
+        assert_eq!(t.offer(Some(b"never"), None), Offered::Retired);
+        t.publish();
+        assert!(t.get("never").is_some_and(|h| h.retired), "a tombstone of an experiment never seen marks it retired");
+        let fresh = br#"{"experiment":"never","version":1,"state":"learning","published_at_ms":5,"weights":{"a":1.0}}"#;
+        assert_eq!(t.offer(None, Some(fresh)), Offered::Applied, "then its first weights apply; no key: the experiment field");
         assert_eq!(t.offer(Some(b"e"), Some(&msg(5, "learning", r#"{"a":1.0}"#))), Offered::IgnoredVersion);
         assert_eq!(t.offer(Some(b"e"), Some(&msg(6, "learning", r#"{"a":1.0}"#))), Offered::Applied, "defined again, above every version");
         t.publish();

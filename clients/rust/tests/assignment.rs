@@ -153,13 +153,13 @@ fn without_usable_weights_the_fallback_answers_and_is_counted() {
     assert_eq!((&*a.arm, a.propensity, a.weights_version, a.source), ("safe", 1.0, None, Source::FallbackMissing));
     let a = client.assign("other", "u1").expect("fallback");
     assert!(a.propensity == 0.5 && (&*a.arm == "x" || &*a.arm == "y"), "{a:?}");
-    client.offer("other", Some(br#"{"version":2,"state":"learning","published_at_ms":9000,"weights":{"z":1.0}}"#));
+    client.offer("other", Some(br#"{"experiment":"other","version":2,"state":"learning","published_at_ms":9000,"weights":{"z":1.0}}"#));
     assert_eq!(client.assign("other", "u1").expect("weights").source, Source::Weights);
     now.store(14_001, std::sync::atomic::Ordering::SeqCst);
     assert_eq!(client.assign("other", "u1").expect("fallback").source, Source::FallbackStale, "older than max_age");
-    client.offer("other", Some(br#"{"version":1,"state":"learning","published_at_ms":14000,"weights":{"z":1.0}}"#));
+    client.offer("other", Some(br#"{"experiment":"other","version":1,"state":"learning","published_at_ms":14000,"weights":{"z":1.0}}"#));
     assert_eq!(client.assign("other", "u1").expect("fallback").source, Source::FallbackStale, "a regressed version is ignored");
-    client.offer("other", Some(br#"{"version":3,"state":"retired","published_at_ms":14000,"weights":{"z":1.0}}"#));
+    client.offer("other", Some(br#"{"experiment":"other","version":3,"state":"retired","published_at_ms":14000,"weights":{"z":1.0}}"#));
     assert_eq!(client.assign("other", "u1").expect("fallback").source, Source::FallbackRetired);
     let c = client.counts();
     assert_eq!((c.assignments_weights, c.assignments_fallback, c.fallback_missing, c.fallback_stale, c.fallback_retired), (1, 5, 2, 2, 1));
@@ -174,7 +174,7 @@ fn without_usable_weights_the_fallback_answers_and_is_counted() {
 fn events_are_written_in_the_sidecar_s_input_format() {
     use apportion_client::events::{impression_json, reward_json};
     let client = Client::offline(ClientConfig::new("unused"), Box::new(|| 0));
-    client.offer("e", Some(br#"{"version":4,"published_at_ms":0,"weights":{"a":1.0}}"#));
+    client.offer("e", Some(br#"{"experiment":"e","version":4,"state":"learning","published_at_ms":0,"weights":{"a":1.0}}"#));
     let a = client.assign("e", "u").expect("weights");
     let imp: serde_json::Value = serde_json::from_str(&impression_json("p-1", &a, 77)).expect("JSON");
     assert_eq!(imp, serde_json::json!({"event_id":"p-1","kind":"impression","experiment":"e","arm":"a","ts_ms":77,"propensity":1.0,"weights_version":4}));
@@ -182,4 +182,28 @@ fn events_are_written_in_the_sidecar_s_input_format() {
     let rew: serde_json::Value = serde_json::from_str(&reward_json("p-1-r2", &shown, 0.5, 90)).expect("JSON");
     assert_eq!(rew, serde_json::json!({"event_id":"p-1-r2","kind":"reward","experiment":"e","arm":"a","ts_ms":90,"reward":0.5,"impression_id":"p-1","impression_ts_ms":77}));
     assert!(matches!(client.impression(&a, None), Err(apportion_client::ClientError::Offline)));
+}
+
+#[test]
+fn the_hash_gives_the_python_client_s_vectors() {
+    // Printed by clients/python/tests/print_vectors.py (the Python client, Python 3.11.7):
+    // experiment "thumb-style", weights a 0.5, b 0.3, c 0.2.
+    let expected = [
+        ("u-0", 0x7de4_365b_e122_237d, "a"),
+        ("u-1", 0x7de4_355b_e122_21ca, "a"),
+        ("u-2", 0x7de4_345b_e122_2017, "c"),
+        ("u-3", 0x7de4_335b_e122_1e64, "a"),
+        ("u-4", 0x7de4_325b_e122_1cb1, "a"),
+        ("u-5", 0x7de4_315b_e122_1afe, "a"),
+        ("u-6", 0x7de4_305b_e122_194b, "a"),
+        ("u-7", 0x7de4_2f5b_e122_1798, "c"),
+        ("u-8", 0x7de4_2e5b_e122_15e5, "b"),
+        ("u-9", 0x7de4_2d5b_e122_1432, "a"),
+    ];
+    let names = ["a", "b", "c"];
+    let arms: Vec<Racer> = names.iter().zip([0.5, 0.3, 0.2]).map(|(a, w)| Racer { seed: arm_seed(a), weight: w }).collect();
+    for (unit, key, arm) in expected {
+        assert_eq!(unit_key("thumb-style", unit), key, "{unit}");
+        assert_eq!(names[choose(key, &arms).expect("arm")], arm, "{unit}");
+    }
 }
