@@ -52,6 +52,34 @@ pub struct ArmReport {
 }
 
 impl ArmReport {
+    /// How many entries [`ArmReport::write_figures`] writes.
+    pub fn figure_count(&self) -> usize {
+        11 + 3 * usize::from(self.lift.is_some())
+    }
+
+    /// Writes the figures that the weights message and `/experiments` both carry of an arm:
+    /// pulls (all, matured, pending), reward, mean, the fixed-time interval, the sequence,
+    /// `undecided`, `best_probability`, and the lift when there is a control arm.
+    pub fn write_figures<M: serde::ser::SerializeMap>(&self, m: &mut M) -> Result<(), M::Error> {
+        m.serialize_entry("pulls", &self.pulls)?;
+        m.serialize_entry("matured_pulls", &self.matured_pulls())?;
+        m.serialize_entry("pending_pulls", &self.pending_pulls)?;
+        m.serialize_entry("reward", &self.reward)?;
+        m.serialize_entry("mean", &self.mean)?;
+        m.serialize_entry("ci_low", &self.ci_low)?;
+        m.serialize_entry("ci_high", &self.ci_high)?;
+        m.serialize_entry("cs_low", &self.cs_low)?;
+        m.serialize_entry("cs_high", &self.cs_high)?;
+        m.serialize_entry("undecided", &self.undecided)?;
+        m.serialize_entry("best_probability", &self.best_probability)?;
+        if let Some(l) = &self.lift {
+            m.serialize_entry("lift", &l.estimate)?;
+            m.serialize_entry("lift_low", &l.low)?;
+            m.serialize_entry("lift_high", &l.high)?;
+        }
+        Ok(())
+    }
+
     pub fn matured_pulls(&self) -> u64 {
         self.pulls - self.pending_pulls
     }

@@ -27,23 +27,8 @@ impl Serialize for ArmSummary<'_> {
     fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
         use serde::ser::SerializeMap;
         let a = self.0;
-        let mut m = s.serialize_map(Some(11 + 3 * usize::from(a.lift.is_some())))?;
-        m.serialize_entry("pulls", &a.pulls)?;
-        m.serialize_entry("matured_pulls", &a.matured_pulls())?;
-        m.serialize_entry("pending_pulls", &a.pending_pulls)?;
-        m.serialize_entry("reward", &a.reward)?;
-        m.serialize_entry("mean", &a.mean)?;
-        m.serialize_entry("ci_low", &a.ci_low)?;
-        m.serialize_entry("ci_high", &a.ci_high)?;
-        m.serialize_entry("cs_low", &a.cs_low)?;
-        m.serialize_entry("cs_high", &a.cs_high)?;
-        m.serialize_entry("undecided", &a.undecided)?;
-        m.serialize_entry("best_probability", &a.best_probability)?;
-        if let Some(l) = &a.lift {
-            m.serialize_entry("lift", &l.estimate)?;
-            m.serialize_entry("lift_low", &l.low)?;
-            m.serialize_entry("lift_high", &l.high)?;
-        }
+        let mut m = s.serialize_map(Some(a.figure_count()))?;
+        a.write_figures(&mut m)?;
         m.end()
     }
 }

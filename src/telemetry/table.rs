@@ -329,24 +329,9 @@ struct ArmJson<'a>(&'a ArmRow);
 impl Serialize for ArmJson<'_> {
     fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
         let (a, f) = (self.0, &self.0.figures);
-        let mut m = s.serialize_map(Some(14 + 3 * usize::from(f.lift.is_some())))?;
-        m.serialize_entry("pulls", &f.pulls)?;
-        m.serialize_entry("matured_pulls", &f.matured_pulls())?;
-        m.serialize_entry("pending_pulls", &f.pending_pulls)?;
-        m.serialize_entry("reward", &f.reward)?;
-        m.serialize_entry("mean", &f.mean)?;
-        m.serialize_entry("ci_low", &f.ci_low)?;
-        m.serialize_entry("ci_high", &f.ci_high)?;
-        m.serialize_entry("cs_low", &f.cs_low)?;
-        m.serialize_entry("cs_high", &f.cs_high)?;
-        if let Some(l) = &f.lift {
-            m.serialize_entry("lift", &l.estimate)?;
-            m.serialize_entry("lift_low", &l.low)?;
-            m.serialize_entry("lift_high", &l.high)?;
-        }
+        let mut m = s.serialize_map(Some(f.figure_count() + 3))?;
+        f.write_figures(&mut m)?;
         m.serialize_entry("weight", &a.weight)?;
-        m.serialize_entry("undecided", &f.undecided)?;
-        m.serialize_entry("best_probability", &f.best_probability)?;
         m.serialize_entry("excess_rewards", &f.excess_rewards)?;
         m.serialize_entry("removed", &a.removed)?;
         m.end()
