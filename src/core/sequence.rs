@@ -15,10 +15,10 @@
 //! and the sequence is {p : ln Mₙ(p) < ln(1/α)}. Under the true mean Mₙ is a nonnegative
 //! supermartingale with M₀ = 1, so by Ville's inequality P(∃n: Mₙ(μ) ≥ 1/α) ≤ α. For 0/1
 //! rewards each factor has expectation exactly 1; for rewards in [0, 1] with mean μ it has at
-//! most 1, since θ^x (1−θ)^(1−x) is convex in x (the observations are "sub-Bernoulli", in the
-//! words of Howard et al.). An arm's factors arrive only when the arm is pulled and the choice
-//! to pull it is made before its reward is seen, so the product stays a supermartingale under
-//! any adaptive allocation, Thompson sampling and UCB1 included.
+//! most 1, since θ^x (1−θ)^(1−x) is convex in x (bounded observations are "sub-Bernoulli").
+//! An arm's factors arrive only when the arm is pulled and the choice to pull it is made before
+//! its reward is seen, so the product stays a supermartingale under any adaptive allocation,
+//! Thompson sampling and UCB1 included.
 //!
 //! Writing p̂ = S/n and H(p̂) = −p̂ ln p̂ − (1−p̂) ln(1−p̂), ln Mₙ(p) = ln B(1+S, 1+n−S) +
 //! n·H(p̂) + n·kl(p̂, p), so the ends are where n·kl(p̂, p) reaches
