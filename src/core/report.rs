@@ -122,7 +122,11 @@ pub struct Judged<'a> {
 /// [`reference_ms`]). The reward sum is clamped to `max` per pull, so the mean stays in the
 /// reward range and inside its own interval.
 pub fn estimate(stats: &ArmStats, model: RewardModel, reference_ms: i64, half_life: HalfLife) -> (f64, Interval) {
-    let (n, sum, sum_sq) = stats.at(reference_ms, half_life);
+    estimate_from(stats.at(reference_ms, half_life), model)
+}
+
+/// [`estimate`] from sums already discounted: (pulls, reward sum, sum of squares).
+fn estimate_from((n, sum, sum_sq): (f64, f64, f64), model: RewardModel) -> (f64, Interval) {
     let s = clamp_sum(n, sum, model.max());
     let mean = if n > 0.0 { s / n } else { 0.0 };
     let ci = match model {
@@ -143,9 +147,9 @@ pub fn report(stats: &[ArmStats], spec: &ExperimentSpec, judged: &Judged, now_ms
     let mut arms: Vec<ArmReport> = stats
         .iter()
         .map(|s| {
-            let (mean, ci) = estimate(s, model, reference, half_life);
-            let (n, sum, _) = s.at(reference, half_life);
-            let sum = clamp_sum(n, sum, max);
+            let sums_at = s.at(reference, half_life);
+            let (mean, ci) = estimate_from(sums_at, model);
+            let (n, sum) = (sums_at.0, clamp_sum(sums_at.0, sums_at.1, max));
             sums.push((n, sum));
             let cs = confidence_sequence(sum / max, n, alpha);
             ArmReport {
