@@ -5,6 +5,8 @@ use std::sync::atomic::{AtomicU64, Ordering};
 
 use serde::Serialize;
 
+use crate::table::Offered;
+
 #[derive(Default)]
 pub(crate) struct Counters {
     pub assignments_weights: AtomicU64,
@@ -43,6 +45,15 @@ pub(crate) fn bump(c: &AtomicU64) {
 }
 
 impl Counters {
+    /// Counts what became of a weights message that was not taken.
+    pub fn count_offered(&self, o: Offered) {
+        match o {
+            Offered::IgnoredVersion => bump(&self.ignored_versions),
+            Offered::Unreadable => bump(&self.unreadable_messages),
+            Offered::Applied | Offered::Retired => {}
+        }
+    }
+
     pub fn snapshot(&self) -> Counts {
         let g = |c: &AtomicU64| c.load(Ordering::Relaxed);
         Counts {

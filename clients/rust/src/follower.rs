@@ -11,8 +11,8 @@ use rdkafka::message::Message;
 use rdkafka::types::RDKafkaErrorCode;
 use rdkafka::{ClientConfig, Offset, TopicPartitionList};
 
-use crate::counters::{bump, Counters};
-use crate::table::{Offered, Table};
+use crate::counters::Counters;
+use crate::table::Table;
 
 pub(crate) struct Follower {
     pub consumer: BaseConsumer,
@@ -58,11 +58,7 @@ impl Follower {
                 match self.consumer.poll(wait) {
                     None => break,
                     Some(Ok(m)) => {
-                        match self.table.offer(m.key(), m.payload()) {
-                            Offered::IgnoredVersion => bump(&self.counters.ignored_versions),
-                            Offered::Unreadable => bump(&self.counters.unreadable_messages),
-                            Offered::Applied | Offered::Retired => {}
-                        }
+                        self.counters.count_offered(self.table.offer(m.key(), m.payload()));
                         offered = true;
                     }
                     Some(Err(KafkaError::PartitionEOF(_))) => {

@@ -132,6 +132,8 @@ pub enum ClientError {
     Offline,
     #[error("the producer's queue stayed full; event not written")]
     QueueFull,
+    #[error("cannot start the thread that follows the weights: {0}")]
+    Thread(#[from] std::io::Error),
 }
 
 /// A fallback with its arms raced by the same hash.
@@ -177,10 +179,8 @@ fn wall_clock_ms() -> i64 {
 
 /// 64 random bits from the standard library's randomly keyed hasher (no generator needed).
 pub(crate) fn random_u64() -> u64 {
-    use std::hash::{BuildHasher, Hasher};
-    let mut h = std::collections::hash_map::RandomState::new().build_hasher();
-    h.write_u128(Instant::now().elapsed().as_nanos() ^ u128::from(std::process::id()));
-    h.finish()
+    use std::hash::BuildHasher;
+    std::collections::hash_map::RandomState::new().hash_one(std::process::id())
 }
 
 impl Client {
@@ -208,7 +208,7 @@ impl Client {
             stop: client.stop.clone(),
             loaded: client.loaded.clone(),
         };
-        client.follower = Some(std::thread::Builder::new().name("apportion-weights".into()).spawn(move || f.run()).map_err(|_| ClientError::Offline)?);
+        client.follower = Some(std::thread::Builder::new().name("apportion-weights".into()).spawn(move || f.run())?);
         client.producer = Some(producer);
         Ok(client)
     }
@@ -235,11 +235,7 @@ impl Client {
     /// Takes one weights message (key and value; `None` for a tombstone) and makes it visible.
     pub fn offer(&self, key: &str, value: Option<&[u8]>) -> Offered {
         let o = self.table.offer(Some(key.as_bytes()), value);
-        match o {
-            Offered::IgnoredVersion => bump(&self.counters.ignored_versions),
-            Offered::Unreadable => bump(&self.counters.unreadable_messages),
-            Offered::Applied | Offered::Retired => {}
-        }
+        self.counters.count_offered(o);
         self.table.publish();
         o
     }
